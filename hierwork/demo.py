@@ -1,0 +1,227 @@
+"""Invented demo data: three scenarios with known true group effects.
+
+The data are simulated from multilevel models whose group effects come from a
+normal distribution with a moderate standard deviation, and whose groups are of
+very unequal size. That is the setting in which partial pooling clearly beats
+estimating each group on its own: small groups are pulled towards the
+population, large ones keep their own estimate.
+
+Scenarios (all invented; see ``docs/demo.md``):
+
+``wheat``
+    Wheat yield (t/ha) on plots of 30 farms in 5 regions; plot-level nitrogen
+    (kg/ha) and tillage; farm-level soil organic carbon (%). Farms range from
+    2 to 72 plots. The nitrogen response varies a little by farm.
+``line_defects``
+    Defect counts per shift on 25 production lines, with the hours run as the
+    exposure; counts are mildly over-dispersed (gamma-Poisson), so both a
+    Poisson and a negative binomial model make sense.
+``depot_delays``
+    Late deliveries out of all deliveries per week at 40 delivery depots,
+    with the number of rainy days in the week as a predictor.
+
+Besides each data file, ``truth/<scenario>_groups.csv`` records the true
+group-level values used to simulate it, so that fits can be compared with the
+truth.
+"""
+from __future__ import annotations
+
+import os
+import tempfile
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+
+__all__ = ["DEFAULT_SEED", "DEMO_DATASETS", "TRUE_PARAMETERS", "make_demo_data"]
+
+DEFAULT_SEED = 20261202
+
+DEMO_DATASETS = ("wheat", "line_defects", "depot_delays")
+
+#: The population-level values the data are simulated from (data units).
+TRUE_PARAMETERS = {
+    "wheat": {
+        "intercept": 4.2,            # t/ha at 0 kg N, conventional tillage, 0 % soil carbon
+        "nitrogen_kg": 0.012,        # t/ha per kg N
+        "tillage[reduced]": -0.25,
+        "tillage[none]": -0.55,
+        "soil_carbon": 0.35,         # t/ha per % soil organic carbon (farm level)
+        "region.sd": 0.25,
+        "farm.sd": 0.35,             # farm intercepts around their region
+        "farm.nitrogen_kg.sd": 0.0025,
+        "residual_sd": 1.00,
+    },
+    "line_defects": {
+        "intercept": np.log(0.35),   # log defects per hour on a day shift
+        "shift[evening]": 0.15,
+        "shift[night]": 0.35,
+        "line.sd": 0.45,
+        "dispersion_shape": 8.0,     # gamma-Poisson shape (negative binomial alpha)
+    },
+    "depot_delays": {
+        "intercept": -2.4,           # log odds of a late delivery in a dry week
+        "rain_days": 0.12,           # per rainy day in the week
+        "depot.sd": 0.5,
+    },
+}
+
+_REGIONS = ("north", "east", "south", "west", "central")
+# Farm sizes (plots): very unequal on purpose, from 2 to 72 plots.
+_FARM_PLOTS = (2, 2, 2, 2, 2, 3, 3, 3, 3, 4, 4, 5, 6, 8, 10,
+               12, 15, 18, 22, 26, 30, 35, 40, 45, 50, 55, 60, 64, 68, 72)
+_NITROGEN_LEVELS = (0, 40, 80, 120, 160, 200, 240)
+_TILLAGE = ("conventional", "reduced", "none")
+# Shifts recorded per production line: from a handful to several months.
+_LINE_SHIFTS = (4, 5, 6, 8, 10, 12, 15, 18, 20, 24, 28, 32, 36,
+                40, 45, 50, 55, 60, 70, 80, 90, 100, 110, 125, 140)
+_SHIFTS = ("day", "evening", "night")
+# Weeks recorded per depot: new depots have a few weeks, old ones a year.
+_DEPOT_WEEKS = (2, 2, 3, 3, 3, 4, 4, 5, 5, 6, 6, 7, 8, 8, 9, 10, 10, 12, 12, 14,
+                15, 16, 18, 20, 22, 24, 26, 26, 30, 32, 35, 38, 40, 42, 45, 48, 50, 52, 52, 52)
+
+
+def _wheat(rng: np.random.Generator) -> tuple[pd.DataFrame, pd.DataFrame]:
+    p = TRUE_PARAMETERS["wheat"]
+    n_farms = len(_FARM_PLOTS)
+    plots = rng.permutation(_FARM_PLOTS)
+    farms = [f"farm_{i + 1:02d}" for i in range(n_farms)]
+    region_of_farm = np.array(_REGIONS)[np.arange(n_farms) % len(_REGIONS)]
+    rng.shuffle(region_of_farm)
+    region_effect = dict(zip(_REGIONS, rng.normal(0.0, p["region.sd"], len(_REGIONS))))
+    soil_carbon = np.round(rng.uniform(1.0, 3.5, n_farms), 2)
+    farm_intercept = (p["intercept"] + p["soil_carbon"] * soil_carbon
+                      + np.array([region_effect[r] for r in region_of_farm])
+                      + rng.normal(0.0, p["farm.sd"], n_farms))
+    farm_slope = p["nitrogen_kg"] + rng.normal(0.0, p["farm.nitrogen_kg.sd"], n_farms)
+    truth = pd.DataFrame({
+        "farm": farms, "region": region_of_farm, "n_plots": plots,
+        "soil_carbon": soil_carbon,
+        "true_intercept": farm_intercept.round(4),
+        "true_nitrogen_slope": farm_slope.round(6),
+    })
+
+    farm_idx = np.repeat(np.arange(n_farms), plots)
+    n = farm_idx.size
+    nitrogen = rng.choice(_NITROGEN_LEVELS, n)
+    tillage = rng.choice(_TILLAGE, n, p=[0.5, 0.3, 0.2])
+    tillage_effect = np.select([tillage == "reduced", tillage == "none"],
+                               [p["tillage[reduced]"], p["tillage[none]"]], 0.0)
+    mean = farm_intercept[farm_idx] + farm_slope[farm_idx] * nitrogen + tillage_effect
+    yield_t_ha = rng.normal(mean, p["residual_sd"])
+    data = pd.DataFrame({
+        "region": region_of_farm[farm_idx],
+        "farm": np.array(farms)[farm_idx],
+        "plot": np.concatenate([np.arange(1, k + 1) for k in plots]),
+        "soil_carbon": soil_carbon[farm_idx],
+        "tillage": tillage,
+        "nitrogen_kg": nitrogen,
+        "yield_t_ha": np.round(np.clip(yield_t_ha, 0.1, None), 2),
+    })
+    return data, truth
+
+
+def _line_defects(rng: np.random.Generator) -> tuple[pd.DataFrame, pd.DataFrame]:
+    p = TRUE_PARAMETERS["line_defects"]
+    n_lines = len(_LINE_SHIFTS)
+    shifts = rng.permutation(_LINE_SHIFTS)
+    lines = [f"L{i + 1:02d}" for i in range(n_lines)]
+    line_log_rate = p["intercept"] + rng.normal(0.0, p["line.sd"], n_lines)
+    truth = pd.DataFrame({
+        "line": lines, "n_shifts": shifts,
+        "true_log_rate": line_log_rate.round(5),
+    })
+
+    line_idx = np.repeat(np.arange(n_lines), shifts)
+    n = line_idx.size
+    shift = rng.choice(_SHIFTS, n, p=[0.45, 0.35, 0.20])
+    hours_run = np.round(rng.uniform(4.0, 12.0, n), 1)
+    shift_effect = np.select([shift == "evening", shift == "night"],
+                             [p["shift[evening]"], p["shift[night]"]], 0.0)
+    rate = np.exp(line_log_rate[line_idx] + shift_effect) * hours_run
+    # Gamma-Poisson mixture: mean `rate`, variance rate + rate^2 / shape.
+    shape = p["dispersion_shape"]
+    defects = rng.poisson(rng.gamma(shape, rate / shape))
+    data = pd.DataFrame({
+        "line": np.array(lines)[line_idx],
+        "shift_no": np.concatenate([np.arange(1, k + 1) for k in shifts]),
+        "shift": shift,
+        "hours_run": hours_run,
+        "defects": defects,
+    })
+    return data, truth
+
+
+def _depot_delays(rng: np.random.Generator) -> tuple[pd.DataFrame, pd.DataFrame]:
+    p = TRUE_PARAMETERS["depot_delays"]
+    n_depots = len(_DEPOT_WEEKS)
+    weeks = rng.permutation(_DEPOT_WEEKS)
+    depots = [f"depot_{i + 1:02d}" for i in range(n_depots)]
+    depot_log_odds = p["intercept"] + rng.normal(0.0, p["depot.sd"], n_depots)
+    typical_volume = np.round(np.exp(rng.uniform(np.log(15), np.log(200), n_depots)))
+    truth = pd.DataFrame({
+        "depot": depots, "n_weeks": weeks, "typical_deliveries": typical_volume.astype(int),
+        "true_log_odds": depot_log_odds.round(5),
+    })
+
+    depot_idx = np.repeat(np.arange(n_depots), weeks)
+    n = depot_idx.size
+    deliveries = np.maximum(rng.poisson(typical_volume[depot_idx]), 3)
+    rain_days = rng.binomial(7, 0.3, n)
+    logit = depot_log_odds[depot_idx] + p["rain_days"] * rain_days
+    late = rng.binomial(deliveries, 1.0 / (1.0 + np.exp(-logit)))
+    data = pd.DataFrame({
+        "depot": np.array(depots)[depot_idx],
+        "week": np.concatenate([np.arange(1, k + 1) for k in weeks]),
+        "rain_days": rain_days,
+        "deliveries": deliveries,
+        "late": late,
+    })
+    return data, truth
+
+
+_SCENARIOS = {"wheat": _wheat, "line_defects": _line_defects, "depot_delays": _depot_delays}
+
+
+def _write_csv_atomically(frame: pd.DataFrame, path: Path) -> None:
+    """Write ``frame`` to a temporary sibling and rename it into place."""
+    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
+    try:
+        with os.fdopen(fd, "w", newline="") as handle:
+            frame.to_csv(handle, index=False, lineterminator="\n")
+        os.replace(tmp, path)
+    except BaseException:
+        Path(tmp).unlink(missing_ok=True)
+        raise
+
+
+def make_demo_data(out_dir, seed: int = DEFAULT_SEED) -> dict[str, Path]:
+    """Simulate the demo data sets and write them as CSV files.
+
+    Parameters
+    ----------
+    out_dir : str or os.PathLike
+        Folder to write into (created if missing). Each scenario ``name`` is
+        written to ``name.csv`` and its true group values to
+        ``truth/name_groups.csv``; existing files are replaced.
+    seed : int, optional
+        Seed of the random number generator. Each scenario draws from its own
+        stream spawned from this seed, so the same seed gives byte-identical
+        files.
+
+    Returns
+    -------
+    dict of str to pathlib.Path
+        The path of each data file, keyed by scenario name (see
+        ``DEMO_DATASETS``).
+    """
+    out = Path(out_dir)
+    (out / "truth").mkdir(parents=True, exist_ok=True)
+    streams = np.random.SeedSequence(seed).spawn(len(DEMO_DATASETS))
+    written = {}
+    for name, stream in zip(DEMO_DATASETS, streams):
+        data, truth = _SCENARIOS[name](np.random.default_rng(stream))
+        _write_csv_atomically(truth, out / "truth" / f"{name}_groups.csv")
+        _write_csv_atomically(data, out / f"{name}.csv")
+        written[name] = out / f"{name}.csv"
+    return written
