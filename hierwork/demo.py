@@ -53,14 +53,14 @@ TRUE_PARAMETERS = {
         "residual_sd": 1.00,
     },
     "line_defects": {
-        "intercept": np.log(0.35),   # log defects per hour on a day shift
+        "intercept": np.log(0.2),    # log defects per hour on a day shift
         "shift[evening]": 0.15,
         "shift[night]": 0.35,
-        "line.sd": 0.45,
+        "line.sd": 0.40,
         "dispersion_shape": 8.0,     # gamma-Poisson shape (negative binomial alpha)
     },
     "depot_delays": {
-        "intercept": -2.4,           # log odds of a late delivery in a dry week
+        "intercept": -2.5,           # log odds of a late delivery in a dry week
         "rain_days": 0.12,           # per rainy day in the week
         "depot.sd": 0.5,
     },
@@ -73,8 +73,8 @@ _FARM_PLOTS = (2, 2, 2, 2, 2, 3, 3, 3, 3, 4, 4, 5, 6, 8, 10,
 _NITROGEN_LEVELS = (0, 40, 80, 120, 160, 200, 240)
 _TILLAGE = ("conventional", "reduced", "none")
 # Shifts recorded per production line: from a handful to several months.
-_LINE_SHIFTS = (4, 5, 6, 8, 10, 12, 15, 18, 20, 24, 28, 32, 36,
-                40, 45, 50, 55, 60, 70, 80, 90, 100, 110, 125, 140)
+_LINE_SHIFTS = (2, 2, 3, 3, 4, 5, 6, 8, 10, 12, 15, 18, 22,
+                26, 30, 36, 42, 50, 60, 70, 80, 95, 110, 125, 140)
 _SHIFTS = ("day", "evening", "night")
 # Weeks recorded per depot: new depots have a few weeks, old ones a year.
 _DEPOT_WEEKS = (2, 2, 3, 3, 3, 4, 4, 5, 5, 6, 6, 7, 8, 8, 9, 10, 10, 12, 12, 14,
@@ -158,7 +158,7 @@ def _depot_delays(rng: np.random.Generator) -> tuple[pd.DataFrame, pd.DataFrame]
     weeks = rng.permutation(_DEPOT_WEEKS)
     depots = [f"depot_{i + 1:02d}" for i in range(n_depots)]
     depot_log_odds = p["intercept"] + rng.normal(0.0, p["depot.sd"], n_depots)
-    typical_volume = np.round(np.exp(rng.uniform(np.log(15), np.log(200), n_depots)))
+    typical_volume = np.round(np.exp(rng.uniform(np.log(10), np.log(60), n_depots)))
     truth = pd.DataFrame({
         "depot": depots, "n_weeks": weeks, "typical_deliveries": typical_volume.astype(int),
         "true_log_odds": depot_log_odds.round(5),
