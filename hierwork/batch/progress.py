@@ -1,0 +1,126 @@
+"""Progress: the plain log, the live terminal view and ``hierwork status``.
+
+Everything shown is read back from the batch database, so the live view of
+the running batch and ``hierwork status`` from another terminal agree.
+"""
+from __future__ import annotations
+
+import shutil
+import sys
+import time
+from datetime import datetime
+from pathlib import Path
+
+from hierwork.batch.queue import FINAL, Queue
+
+ORDER = ("passed", "failed", "invalid", "crashed", "running", "interrupted", "pending")
+
+
+def is_terminal() -> bool:
+    """Whether stdout is a terminal (the live view is drawn only there)."""
+    return sys.stdout.isatty()
+
+
+class Log:
+    """Append timestamped lines to ``batch.log``; echo them when stdout is not a terminal."""
+
+    def __init__(self, path):
+        self.path = Path(path)
+        self.echo = not is_terminal()
+
+    def write(self, line: str) -> None:
+        text = f"{datetime.now():%Y-%m-%d %H:%M:%S} {line}"
+        with open(self.path, "a", encoding="utf-8") as handle:
+            handle.write(text + "\n")
+        if self.echo:
+            print(text, flush=True)
+
+
+def counts(jobs: list[dict]) -> dict:
+    """Jobs per status, in display order (zero counts left out)."""
+    found = {}
+    for job in jobs:
+        found[job["status"]] = found.get(job["status"], 0) + 1
+    return {status: found[status] for status in ORDER if status in found}
+
+
+def eta_seconds(jobs: list[dict], slots: int, now: float | None = None) -> float | None:
+    """Estimated seconds left: mean duration of finished jobs, spread over ``slots``.
+
+    None until one job has finished (common practice: no estimate without data).
+    """
+    now = now or time.time()
+    took = [j["finished"] - j["started"] for j in jobs
+            if j["status"] in FINAL and j["started"] and j["finished"]]
+    if not took:
+        return None
+    mean = sum(took) / len(took)
+    left = sum(mean for j in jobs if j["status"] in ("pending", "interrupted"))
+    left += sum(max(0.0, mean - (now - j["started"])) for j in jobs
+                if j["status"] == "running" and j["started"])
+    return left / max(1, slots)
+
+
+def status_lines(queue: Queue, width: int = 100) -> list[str]:
+    """Counts, estimated time left and one line per running attempt."""
+    jobs = queue.jobs()
+    tally = ", ".join(f"{n} {status}" for status, n in counts(jobs).items()) or "no jobs"
+    eta = eta_seconds(jobs, queue.meta("slots", 1))
+    lines = [f"{len(jobs)} jobs: {tally}" + (f"; about {duration(eta)} left" if eta is not None else "")]
+    now = time.time()
+    for attempt in queue.running():
+        where = f" on {attempt['worker']}" if attempt["worker"] not in (None, "local") else ""
+        head = f"  {attempt['job']} attempt {attempt['number']}{where}, {duration(now - attempt['started'])}"
+        last = last_output(queue.dir / f"{attempt['run_dir']}.log")
+        lines.append(_fit(f"{head}: {last}" if last else head, width))
+    return lines
+
+
+def last_output(log_path: Path) -> str | None:
+    """The latest progress text of a fit's log (after the last carriage return or newline)."""
+    try:
+        with open(log_path, "rb") as handle:
+            handle.seek(0, 2)
+            handle.seek(max(0, handle.tell() - 2048))
+            tail = handle.read().decode("utf-8", "replace")
+    except OSError:
+        return None
+    pieces = [p.strip() for p in tail.replace("\r", "\n").split("\n") if p.strip()]
+    return pieces[-1] if pieces else None
+
+
+def duration(seconds: float) -> str:
+    """``42s``, ``7m05s`` or ``3h12m``."""
+    seconds = int(round(seconds))
+    if seconds < 60:
+        return f"{seconds}s"
+    if seconds < 3600:
+        return f"{seconds // 60}m{seconds % 60:02d}s"
+    return f"{seconds // 3600}h{seconds % 3600 // 60:02d}m"
+
+
+def _fit(line: str, width: int) -> str:
+    return line if len(line) <= width else line[: width - 3] + "..."
+
+
+class LiveView:
+    """Redraw :func:`status_lines` in place on a terminal, at most once a second."""
+
+    def __init__(self, queue: Queue):
+        self.queue = queue
+        self.drawn = 0
+        self.last = 0.0
+
+    def refresh(self, force: bool = False) -> None:
+        if not force and time.monotonic() - self.last < 1.0:
+            return
+        self.last = time.monotonic()
+        width = shutil.get_terminal_size().columns - 1
+        lines = status_lines(self.queue, width)
+        up = f"\x1b[{self.drawn}F" if self.drawn else ""
+        sys.stdout.write(up + "\x1b[J" + "\n".join(lines) + "\n")
+        sys.stdout.flush()
+        self.drawn = len(lines)
+
+    def close(self) -> None:
+        self.refresh(force=True)
