@@ -1,2 +1,17 @@
-"""hierwork: declare, check, fit, gate and report Bayesian multilevel models."""
+"""hierwork: declare, check, fit, gate and report Bayesian multilevel models.
+
+The public API mirrors the command line: ``load_spec`` and ``check`` (``hierwork
+check``), ``fit`` (``hierwork fit``), ``Run`` (a run folder loaded back), and
+``spec_schema`` (``hierwork schema``).
+"""
 __version__ = "0.1.0"
+
+from .api import CheckReport, check, fit  # noqa: E402
+from .errors import DataError, HierworkError, RunFolderError, SpecError  # noqa: E402
+from .runs import Run  # noqa: E402
+from .spec import Spec, load_spec, spec_schema  # noqa: E402
+
+__all__ = [
+    "CheckReport", "DataError", "HierworkError", "Run", "RunFolderError", "Spec", "SpecError",
+    "check", "fit", "load_spec", "spec_schema", "__version__",
+]

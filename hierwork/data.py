@@ -145,7 +145,7 @@ def _rows_text(line_of: np.ndarray, mask: np.ndarray, path: Path) -> str:
 def _check_missing(frame, used, line_of, path) -> None:
     for column, key in used.items():
         values = frame[column]
-        mask = values.isna().to_numpy()
+        mask = values.isna().to_numpy().copy()
         if values.dtype == object or pd.api.types.is_string_dtype(values):
             mask |= values.astype(str).str.strip().eq("").to_numpy()
         if mask.any():

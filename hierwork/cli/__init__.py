@@ -1,5 +1,68 @@
-"""Command-line interface (thin: each command calls the public API)."""
+"""Command-line interface: ``hierwork COMMAND ...``.
+
+Thin by design: each command lives in its own module with ``register(subparsers)``
+and calls the public API. User errors (:class:`~hierwork.errors.HierworkError`)
+print one line and exit 2; anything else is a bug (exit 1, with a traceback).
+"""
+from __future__ import annotations
+
+import argparse
+import importlib
+import sys
+
+# Command modules, in the order ``--help`` lists them.
+COMMANDS = ("check", "fit", "demo", "schema")
+
+EXIT_OK, EXIT_BUG, EXIT_INPUT, EXIT_GATE = 0, 1, 2, 3
 
 
-def main(argv=None):  # placeholder replaced by the real entry point
-    raise SystemExit("hierwork CLI is being built")
+class _Parser(argparse.ArgumentParser):
+    """Usage mistakes are bad input too: one line, exit 2."""
+
+    def error(self, message):
+        self.print_usage(sys.stderr)
+        print(f"hierwork: error: {message}", file=sys.stderr)
+        raise SystemExit(EXIT_INPUT)
+
+
+def build_parser() -> argparse.ArgumentParser:
+    parser = _Parser(prog="hierwork", description="Bayesian multilevel models from a YAML spec: "
+                     "check, fit with a convergence gate, and report partial pooling beside its baselines.")
+    from hierwork import __version__
+
+    parser.add_argument("--version", action="version", version=f"hierwork {__version__}")
+    sub = parser.add_subparsers(dest="command", metavar="COMMAND", parser_class=_Parser)
+    for name in COMMANDS:
+        importlib.import_module(f"hierwork.cli.{name}").register(sub)
+    return parser
+
+
+def _quiet_libraries() -> None:
+    """Keep library chatter (import notices, sampler start-up lines) off the user's screen."""
+    import logging
+    import warnings
+
+    warnings.filterwarnings("ignore", message=".*ArviZ is undergoing a major refactor.*")
+    warnings.filterwarnings("ignore", message=".*could not link to a BLAS.*")
+    warnings.filterwarnings("ignore", category=RuntimeWarning)
+    for name in ("pymc", "pytensor", "arviz"):
+        logging.getLogger(name).setLevel(logging.ERROR)
+
+
+def main(argv=None) -> int:
+    _quiet_libraries()
+    parser = build_parser()
+    args = parser.parse_args(argv)
+    if not getattr(args, "func", None):
+        parser.print_help()
+        return EXIT_INPUT
+    from hierwork.errors import HierworkError
+
+    try:
+        return int(args.func(args) or 0)
+    except HierworkError as exc:
+        print(f"hierwork: error: {exc}", file=sys.stderr)
+        return EXIT_INPUT
+    except KeyboardInterrupt:
+        print("hierwork: interrupted; no run folder was written", file=sys.stderr)
+        return 130

@@ -1,0 +1,148 @@
+"""The public pipeline: ``check`` and ``fit`` (the CLI calls these and nothing deeper)."""
+from __future__ import annotations
+
+import datetime as _dt
+import platform
+import shlex
+import sys
+import time
+from dataclasses import dataclass
+from importlib import metadata
+from pathlib import Path
+
+import yaml
+
+from . import __version__, runs
+from .baselines import baselines
+from .data import load_dataset
+from .describe import describe, plan_as_dict
+from .diagnostics import evaluate_gate
+from .estimates import group_estimates, pooling_factors, population_summary
+from .model import build_model
+from .plan import ModelPlan, make_plan
+from .sampling import choose_engine, run_sampler
+from .spec import Spec, load_spec
+
+_PACKAGES = ("pymc", "pytensor", "arviz", "numpy", "scipy", "pandas", "xarray", "nutpie")
+
+
+@dataclass(frozen=True)
+class CheckReport:
+    """What ``check`` found: the plan, and the choices made for fitting."""
+
+    plan: ModelPlan
+    engine: str
+    engine_reason: str
+
+    def text(self) -> str:
+        return describe(self.plan, {"engine": f"{self.engine} ({self.engine_reason})"})
+
+    def to_dict(self) -> dict:
+        return plan_as_dict(self.plan, {"engine": self.engine, "engine_reason": self.engine_reason})
+
+
+def _as_spec(spec, overrides) -> Spec:
+    if isinstance(spec, Spec):
+        return load_spec(spec.path, overrides) if overrides else spec
+    return load_spec(spec, overrides)
+
+
+def check(spec, overrides: dict | None = None) -> CheckReport:
+    """Validate a spec and its data and make the model plan, without sampling.
+
+    Parameters
+    ----------
+    spec : str, Path or Spec
+    overrides : dict, optional
+        Dotted spec keys and values (``{"sampling.draws": 200}``).
+
+    Returns
+    -------
+    CheckReport
+
+    Raises
+    ------
+    HierworkError
+        On any problem with the spec or the data.
+    """
+    spec = _as_spec(spec, overrides)
+    plan = make_plan(spec, load_dataset(spec))
+    engine, reason = choose_engine(spec.sampling["engine"], plan.n * plan.X.shape[1])
+    return CheckReport(plan, engine, reason)
+
+
+def fit(spec, out, force: bool = False, overrides: dict | None = None, progress: bool | None = None,
+        command: str | None = None) -> runs.Run:
+    """Check, sample, gate, estimate and write a run folder.
+
+    Parameters
+    ----------
+    spec : str, Path or Spec
+    out : str or Path
+        Run folder to create (refused if it exists, unless ``force``).
+    force : bool
+        Replace an existing ``out`` once the new run is complete.
+    overrides : dict, optional
+        Dotted spec keys and values, validated as if written in the spec.
+    progress : bool, optional
+        Show the sampler's progress bar (default: when on a terminal).
+    command : str, optional
+        The command line to record in provenance (default: this process's).
+
+    Returns
+    -------
+    Run
+        The written run folder; ``run.passed`` tells whether the gate passed.
+    """
+    started = _dt.datetime.now(_dt.timezone.utc)
+    t0 = time.perf_counter()
+    out = Path(out)
+    spec = _as_spec(spec, overrides)
+    runs.refuse_existing(out, force)
+    report = check(spec)
+    plan = report.plan
+    settings = spec.sampling
+    model = build_model(plan)
+    idata = run_sampler(model, settings, report.engine, progress)
+    gate = evaluate_gate(idata, spec.gate, settings["max_treedepth"])
+    table = group_estimates(idata, plan, baselines(plan), spec.interval)
+    summary = population_summary(idata, plan, spec.interval)
+    pooling = pooling_factors(idata, plan)
+    finished = _dt.datetime.now(_dt.timezone.utc)
+    provenance = {
+        "format": runs.RUN_FORMAT, "hierwork": __version__, "python": platform.python_version(),
+        "packages": {p: _version(p) for p in _PACKAGES}, "spec_path": str(spec.path), "spec_sha256": spec.sha256,
+        "data_path": str(spec.data_path), "data_sha256": plan.data_sha256, "seed": settings["seed"],
+        "overrides": dict(overrides or {}), "engine": report.engine, "engine_reason": report.engine_reason,
+        "started": started.isoformat(timespec="seconds"), "finished": finished.isoformat(timespec="seconds"),
+        "wall_seconds": round(time.perf_counter() - t0, 3),
+        "sampling_seconds": round(float(idata.sample_stats.attrs.get("sampling_seconds", 0.0)), 3),
+        "command": command or " ".join(shlex.quote(a) for a in sys.argv),
+        "reproduce": f"hierwork fit {shlex.quote(str(out / 'spec.yaml'))} --out NEW_FOLDER",
+        "passed": gate.passed,
+    }
+    with runs.staged_folder(out, force) as tmp:
+        idata.to_netcdf(str(tmp / "posterior.nc"), engine="h5netcdf")
+        runs.write_json(tmp / "diagnostics.json", gate.to_dict())
+        table.to_csv(tmp / "group_estimates.csv", index=False)
+        summary.to_csv(tmp / "summary.csv", index=False)
+        pooling.to_csv(tmp / "pooling.csv", index=False)
+        (tmp / "spec.yaml").write_text(_spec_as_run(spec), encoding="utf-8")
+        runs.write_json(tmp / "provenance.json", provenance)
+        runs.write_json(tmp / "plan.json", report.to_dict())
+    return runs.Run.load(out)
+
+
+def _spec_as_run(spec: Spec) -> str:
+    """The effective spec (overrides are already in its content), data path absolute, original noted."""
+    content = dict(spec.document.content)
+    content["data"] = str(spec.data_path)
+    header = (f"# spec as run by hierwork {__version__}\n# original: {spec.path} (sha256 {spec.sha256})\n")
+    return header + yaml.safe_dump(content, sort_keys=False, allow_unicode=True)
+
+
+def _version(package: str) -> str | None:
+    try:
+        return metadata.version(package)
+    except metadata.PackageNotFoundError:
+        return None

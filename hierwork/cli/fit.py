@@ -1,0 +1,40 @@
+"""``hierwork fit SPEC --out DIR``: sample, gate, and write a run folder."""
+from __future__ import annotations
+
+import sys
+
+from . import EXIT_GATE, EXIT_OK
+from .options import add_override_options, overrides_from
+
+
+def register(sub) -> None:
+    p = sub.add_parser("fit", help="fit a spec and write a gated run folder")
+    p.add_argument("spec", help="model spec (YAML)")
+    p.add_argument("--out", required=True, metavar="DIR", help="run folder to create")
+    p.add_argument("--force", action="store_true", help="replace DIR if it exists (after the new run is complete)")
+    p.add_argument("--quiet", action="store_true", help="no progress bar")
+    add_override_options(p)
+    p.set_defaults(func=run)
+
+
+def run(args) -> int:
+    import hierwork
+
+    result = hierwork.fit(args.spec, out=args.out, force=args.force, overrides=overrides_from(args),
+                          progress=False if args.quiet else None)
+    diag = result.diagnostics
+    print(f"run folder: {result.path}")
+    for check in diag["checks"]:
+        mark = "ok  " if check["passed"] else "FAIL"
+        where = f"  (worst: {check['worst_parameter']})" if check["worst_parameter"] and not check["passed"] else ""
+        print(f"  {mark} {check['name']:<12} {_fmt(check['value'])}  needs {check['comparison']} "
+              f"{check['threshold']:g}{where}")
+    verdict = "gate PASSED: estimates may be used" if result.passed else \
+        "gate FAILED: estimates are NOT valid (see diagnostics.json for advice)"
+    print(verdict, file=sys.stdout)
+    return EXIT_OK if result.passed else EXIT_GATE
+
+
+def _fmt(value: float) -> str:
+    """Enough digits to see a value against its threshold (R-hat 1.0104 is not 1.01)."""
+    return f"{value:.0f}" if abs(value) >= 10 else f"{value:.4f}"

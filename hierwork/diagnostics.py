@@ -1,0 +1,181 @@
+"""The convergence gate: results that fail it are never presented as valid.
+
+Checks and their sources:
+
+* rank-normalised split R-hat, bulk ESS and tail ESS over every element of
+  every sampled quantity (Vehtari, Gelman, Simpson, Carpenter and Bürkner 2021,
+  "Rank-normalization, folding, and localization: an improved R-hat", Bayesian
+  Analysis 16, 667-718; thresholds 1.01 and 400 (100 per chain for 4 chains)
+  are that paper's recommendations);
+* divergent transitions after warm-up (Betancourt 2017, "A conceptual
+  introduction to Hamiltonian Monte Carlo", arXiv:1701.02434: any divergence
+  signals a region the sampler could not explore);
+* E-BFMI of each chain (Betancourt 2016, "Diagnosing suboptimal cotangent
+  disintegrations in Hamiltonian Monte Carlo", arXiv:1604.00695; below 0.3
+  flags poor exploration);
+* share of iterations that hit the maximum tree depth (an efficiency warning;
+  the 5% default is common practice, not from a publication).
+"""
+from __future__ import annotations
+
+from dataclasses import asdict, dataclass, field
+
+import arviz as az
+import numpy as np
+
+_ADVICE = {
+    "r_hat": "chains disagree: run longer (more warmup and draws), or switch the parameterisation "
+             "of the factor named in the worst parameter",
+    "ess_bulk": "too few effective draws: increase draws, or switch the parameterisation of the factor "
+                "named in the worst parameter",
+    "ess_tail": "tails poorly explored: increase draws; check for heavy tails or a funnel",
+    "divergences": "the sampler hit curvature it cannot follow (often a funnel): raise "
+                   "sampling.target_accept (0.95, 0.99) or switch the factor to non_centred",
+    "bfmi": "momentum resampling explores the energy poorly: reparameterise (non_centred), "
+            "or use more informative priors on the group SDs",
+    "treedepth": "trajectories are too long: raise sampling.max_treedepth, or rescale predictors",
+}
+
+
+@dataclass(frozen=True)
+class Check:
+    """One gate check: its value against its threshold, and the worst parameter."""
+
+    name: str
+    comparison: str  # "<=" or ">="
+    threshold: float
+    value: float
+    worst_parameter: str | None
+    passed: bool
+    advice: str = ""
+
+
+@dataclass(frozen=True)
+class GateResult:
+    """All checks of one fit; ``passed`` only if every check passed."""
+
+    checks: tuple
+    passed: bool
+    n_draws: int
+    n_chains: int
+    extra: dict = field(default_factory=dict)
+
+    def failed(self) -> list:
+        return [c for c in self.checks if not c.passed]
+
+    def to_dict(self) -> dict:
+        return {"format": "hierwork-diagnostics/1", "passed": self.passed, "chains": self.n_chains,
+                "draws_per_chain": self.n_draws, "checks": [asdict(c) for c in self.checks],
+                "advice": [c.advice for c in self.failed()], **self.extra}
+
+    def verdict(self) -> str:
+        """One line: PASSED, or FAILED with the failing checks."""
+        if self.passed:
+            return "gate PASSED: all convergence checks within thresholds"
+        parts = [f"{c.name} {_num(c.value)} (needs {c.comparison} {_num(c.threshold)}"
+                 + (f", worst: {c.worst_parameter}" if c.worst_parameter else "") + ")" for c in self.failed()]
+        return "gate FAILED: " + "; ".join(parts) + " - estimates are NOT valid"
+
+
+def _num(v) -> str:
+    return f"{v:.4g}" if isinstance(v, float) else str(v)
+
+
+def _worst(ds, pick) -> tuple[float, str | None]:
+    """Worst value over all elements of all variables, with its label ``var[coord, ...]``."""
+    best_val, best_name = None, None
+    for name, da in ds.data_vars.items():
+        values = np.asarray(da.values, dtype=float)
+        finite = np.isfinite(values)
+        if not finite.any():
+            continue
+        flat = np.where(finite, values, np.nan)
+        idx = np.nanargmax(flat) if pick == "max" else np.nanargmin(flat)
+        val = float(flat.flat[idx])
+        if best_val is None or (val > best_val if pick == "max" else val < best_val):
+            best_val, best_name = val, _label(name, da, np.unravel_index(idx, values.shape))
+    return (best_val if best_val is not None else float("nan")), best_name
+
+
+def _label(name, da, index) -> str:
+    if not da.dims:
+        return str(name)
+    parts = [str(da.coords[d].values[i]) if d in da.coords else str(i) for d, i in zip(da.dims, index)]
+    return f"{name}[{', '.join(parts)}]"
+
+
+def evaluate_gate(idata, gate: dict, max_treedepth: int) -> GateResult:
+    """Run every check of the gate on a fit.
+
+    Parameters
+    ----------
+    idata : arviz.InferenceData
+        With ``posterior`` and ``sample_stats`` (diverging, energy, tree depth).
+    gate : dict
+        The spec's ``gate`` section.
+    max_treedepth : int
+        The sampler's maximum tree depth, to count saturated iterations.
+
+    Returns
+    -------
+    GateResult
+    """
+    post = idata.posterior  # constant elements (correlation diagonals) give NaN and are skipped
+    n_chains, n_draws = post.sizes["chain"], post.sizes["draw"]
+    rhat_val, rhat_at = _worst(az.rhat(post), "max")
+    bulk_val, bulk_at = _worst(az.ess(post, method="bulk"), "min")
+    tail_val, tail_at = _worst(az.ess(post, method="tail"), "min")
+    stats = idata.sample_stats
+    divergences = int(stats["diverging"].sum()) if "diverging" in stats else 0
+    bfmi = np.atleast_1d(az.bfmi(idata)) if "energy" in stats else np.array([np.nan])
+    depth_share = _treedepth_share(stats, max_treedepth)
+    worst_chain = int(np.nanargmin(bfmi)) if np.isfinite(bfmi).any() else None
+
+    def check(name, comparison, threshold, value, worst):
+        ok = bool(np.isfinite(value)) and (value <= threshold if comparison == "<=" else value >= threshold)
+        return Check(name, comparison, float(threshold), float(value), worst, ok, "" if ok else _ADVICE[name])
+
+    checks = (
+        check("r_hat", "<=", gate["r_hat_max"], rhat_val, rhat_at),
+        check("ess_bulk", ">=", gate["ess_bulk_min"], bulk_val, bulk_at),
+        check("ess_tail", ">=", gate["ess_tail_min"], tail_val, tail_at),
+        check("divergences", "<=", gate["divergences_max"], divergences, _divergence_hint(idata, divergences)),
+        check("bfmi", ">=", gate["bfmi_min"], float(np.nanmin(bfmi)) if np.isfinite(bfmi).any() else np.nan,
+              f"chain {worst_chain}" if worst_chain is not None else None),
+        check("treedepth", "<=", gate["treedepth_share_max"], depth_share, None),
+    )
+    extra = {"bfmi_per_chain": [float(x) for x in bfmi], "divergent_per_chain":
+             [int(x) for x in stats["diverging"].sum("draw").values] if "diverging" in stats else []}
+    return GateResult(checks=checks, passed=all(c.passed for c in checks), n_draws=n_draws,
+                      n_chains=n_chains, extra=extra)
+
+
+def _treedepth_share(stats, max_treedepth: int) -> float:
+    for name in ("reached_max_treedepth", "maxdepth_reached"):
+        if name in stats:
+            return float(np.asarray(stats[name].values, dtype=float).mean())
+    if "tree_depth" in stats:
+        return float((stats["tree_depth"].values >= max_treedepth).mean())
+    if "depth" in stats:
+        return float((stats["depth"].values >= max_treedepth).mean())
+    return 0.0
+
+
+def _divergence_hint(idata, divergences: int) -> str | None:
+    """Name the group SD whose value is lowest at divergent draws, relative to its mean (funnel neck)."""
+    if divergences == 0:
+        return None
+    div = idata.sample_stats["diverging"].values.astype(bool)
+    worst, worst_ratio = None, np.inf
+    for name in idata.posterior.data_vars:
+        if not name.endswith("__sd"):
+            continue
+        values = idata.posterior[name].values
+        for k in range(values.shape[-1] if values.ndim > 2 else 1):
+            v = values[..., k] if values.ndim > 2 else values
+            ratio = float(np.mean(v[div]) / np.mean(v)) if np.mean(v) > 0 else np.inf
+            if ratio < worst_ratio:
+                term = idata.posterior[name].coords[idata.posterior[name].dims[-1]].values[k] \
+                    if values.ndim > 2 else ""
+                worst, worst_ratio = f"{name}[{term}]" if term != "" else name, ratio
+    return worst
