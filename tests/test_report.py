@@ -1,0 +1,271 @@
+"""report.html and summary.md rendered from a run folder (docs/contracts.md layout)."""
+from __future__ import annotations
+
+import base64
+import hashlib
+import json
+import re
+
+import numpy as np
+import pandas as pd
+import pytest
+
+from hierwork.errors import RunFolderError
+from hierwork.report import render_report, write_report
+from hierwork.report import figures
+from hierwork.report.markdown import md_escape
+from hierwork.report.verdict import CheckLine, fmt
+from test_report_fixture import HOSTILE, Page, build_run, copy_run, run_root  # noqa: F401
+
+
+@pytest.fixture(scope="module")
+def passing(run_root):
+    run = build_run(run_root)
+    return run, render_report(run)
+
+
+@pytest.fixture(scope="module")
+def failing(run_root):
+    run = build_run(run_root, failing=True)
+    return run, render_report(run)
+
+
+def _text(html: str) -> str:
+    """Visible text of a page, whitespace collapsed."""
+    return Page(html).find("body")[0][2]
+
+
+# --- escaping -----------------------------------------------------------------------
+
+def test_hostile_group_label_and_title_show_as_text(passing):
+    run, html = passing
+    assert "<script>alert(1)" not in html
+    assert "&lt;script&gt;alert(1)&lt;/script&gt;" in html
+    assert "<b>bold?</b>" not in html and "&lt;b&gt;bold?&lt;/b&gt;" in html
+    page = Page(html)
+    # Exactly one script element: the page's own sorting script.
+    scripts = page.find("script")
+    assert len(scripts) == 1 and "alert" not in scripts[0][2]
+    cells = [text for _, _, text in page.find("td", **{"class": "label"})]
+    assert HOSTILE in cells and "Hill & Dale" in cells and "$5 acre" in cells
+
+
+def test_markup_is_balanced(passing, failing):
+    for _, html in (passing, failing):
+        assert Page(html).errors == []
+
+
+def test_markdown_escape_shows_markup_literally():
+    # CommonMark 0.31, section 2.4: any ASCII punctuation may be backslash-escaped.
+    assert md_escape(HOSTILE) == "&lt;script&gt;alert(1)&lt;/script&gt;"
+    assert md_escape("a|b_c*d") == r"a\|b\_c\*d"
+    assert md_escape("line\nbreak") == "line break"
+
+
+def test_summary_md_escapes_group_labels(run_root):
+    run = build_run(run_root)
+    write_report(run)
+    text = (run / "summary.md").read_text()
+    assert "<script>" not in text and "&lt;script&gt;alert(1)&lt;/script&gt;" in text
+    assert "Hill &amp; Dale" in text and r"\$5 acre" in text
+
+
+# --- self-contained -----------------------------------------------------------------
+
+def test_page_requests_nothing_from_elsewhere(passing):
+    _, html = passing
+    page = Page(html)
+    for tag, attrs, _ in page.elements:
+        for name in ("src", "href", "action", "data", "poster"):
+            value = attrs.get(name)
+            if value is not None:
+                assert not re.match(r"(?i)\s*(https?:|//|ftp:)", value), (tag, name, value)
+                if name == "src":
+                    assert value.startswith("data:image/svg+xml;base64,"), tag
+    assert not page.find("link") and not page.find("iframe")
+    assert "@import" not in html and "url(" not in html
+
+
+def test_content_security_policy_allows_exactly_the_inline_style_and_script(passing):
+    # CSP Level 3 (W3C), "hash-source": base64 of the SHA-256 of the element's text.
+    _, html = passing
+    page = Page(html)
+    policy = page.find("meta", **{"http-equiv": "Content-Security-Policy"})[0][1]["content"]
+    assert "default-src 'none'" in policy and "img-src data:" in policy
+    for tag, directive in (("style", "style-src"), ("script", "script-src")):
+        body = re.search(rf"<{tag}>(.*?)</{tag}>", html, re.S).group(1)
+        digest = base64.b64encode(hashlib.sha256(body.encode()).digest()).decode()
+        assert f"{directive} 'sha256-{digest}'" in policy
+
+
+def test_figures_embed_svg_without_scripts_and_have_text_alternatives(passing):
+    _, html = passing
+    page = Page(html)
+    images = page.find("img")
+    assert len(images) == 5  # pooling, traces, energy, divergences, ppc
+    for _, attrs, _ in images:
+        assert len(attrs["alt"]) > 40
+        svg = base64.b64decode(attrs["src"].split(",", 1)[1]).decode()
+        assert svg.lstrip().startswith("<?xml") and "<script" not in svg
+    figures_ = page.find("figure")
+    assert len(figures_) == len(images)
+    assert len(page.find("figcaption")) == len(images)
+
+
+# --- content and order --------------------------------------------------------------
+
+def test_sections_come_in_the_promised_order(passing):
+    _, html = passing
+    ids = [a.get("id") for t, a, _ in Page(html).elements if t == "section"]
+    assert ids == ["verdict", "pooling", "estimates", "diagnostics", "fit", "provenance",
+                   "caution"]
+
+
+def test_passing_verdict_and_no_not_for_use_marks(passing):
+    _, html = passing
+    verdict = Page(html).find("section", id="verdict")[0]
+    assert "passed" in verdict[1]["class"]
+    assert "Gate passed: all 5 convergence checks met their limits." in verdict[2]
+    page = Page(html)
+    assert "NOT FOR USE" not in _text(html) and "do not use" not in _text(html)
+    assert not [a for t, a, _ in page.elements if "not-for-use" in a.get("class", "")]
+    for _, attrs, _ in page.find("img"):
+        assert "NOT FOR USE" not in base64.b64decode(attrs["src"].split(",", 1)[1]).decode()
+
+
+def test_failing_verdict_names_check_value_limit_parameter_and_advice(failing):
+    run, html = failing
+    diagnostics = json.loads((run / "diagnostics.json").read_text())
+    check = next(c for c in diagnostics["checks"] if c["name"] == "ess_bulk")
+    verdict = Page(html).find("section", id="verdict")[0][2]
+    assert verdict.startswith("Verdict \u2716 Gate failed (")
+    assert (f"Bulk ESS {fmt(check['value'])} on {check['worst_parameter']}: must be at least "
+            f"100,000; short of the limit by {fmt(100000 - check['value'])}") in verdict
+    assert "Run longer chains: raise sampling.draws to 2000." in verdict
+    assert "do not use them" in verdict
+    # Estimates and pooling sections are marked, and every figure is stamped.
+    page = Page(html)
+    for key in ("pooling", "estimates"):
+        section = page.find("section", id=key)[0]
+        assert "not-for-use" in section[1]["class"]
+        assert "GATE FAILED \u2013 NOT FOR USE" in section[2]
+    for _, attrs, _ in page.find("img"):
+        svg = base64.b64decode(attrs["src"].split(",", 1)[1]).decode()
+        assert "GATE FAILED \u2013 NOT FOR USE" in svg
+
+
+def test_gate_breaches_are_flagged_in_the_parameter_table(failing):
+    run, html = failing
+    summary = pd.read_csv(run / "summary.csv")
+    page = Page(html)
+    flagged = page.find("td", **{"class": "bad"})
+    # Every bulk ESS is below the failing run's minimum of 100 000.
+    assert sum("fails the gate" in text for _, _, text in flagged) >= len(summary)
+
+
+def test_group_table_lists_every_group_with_its_csv_values(passing):
+    run, html = passing
+    table = pd.read_csv(run / "group_estimates.csv", keep_default_na=False)
+    text = _text(html)
+    for row in table.itertuples():
+        assert f"{row.group} {row.term} {row.n} {fmt(row.no_pooling)} {fmt(row.partial_mean)}" in text
+
+
+def test_pooling_section_shows_the_recorded_pooling_factor(passing):
+    run, html = passing
+    value = pd.read_csv(run / "pooling.csv")["pooling_factor"].iloc[0]
+    section = Page(html).find("section", id="pooling")[0][2]
+    assert f"Pooling factor \u03bb = {fmt(value, 2)}" in section
+    assert "Gelman and Pardoe 2006" in section
+
+
+def test_pooling_alt_text_reports_smallest_and_largest_group(passing):
+    run, html = passing
+    table = pd.read_csv(run / "group_estimates.csv", keep_default_na=False).sort_values("n")
+    alt = Page(html).find("figure", id="pooling-0")
+    img = [a for t, a, _ in Page(html).elements if t == "img"][0]
+    small, large = table.iloc[0], table.iloc[-1]
+    assert alt and (f"{small.group} (n={small.n}) moved from {fmt(small.no_pooling)} on its own "
+                    f"data to {fmt(small.partial_mean)}") in img["alt"]
+    assert f"{large.group} (n={large.n})" in img["alt"]
+
+
+def test_provenance_and_caution_are_present(passing):
+    run, html = passing
+    provenance = json.loads((run / "provenance.json").read_text())
+    text = _text(html)
+    assert provenance["data_sha256"] in text and provenance["reproduce"] in text
+    assert (run / "spec.yaml").read_text().splitlines()[1] in html
+    caution = Page(html).find("section", id="caution")[0][2]
+    assert "qualified analyst" in caution and "health or safety" in caution
+
+
+def test_missing_files_are_named_and_the_rest_still_renders(run_root, tmp_path):
+    run = copy_run(build_run(run_root), tmp_path / "partial")
+    for name in ("posterior.nc", "pooling.csv", "summary.csv"):
+        (run / name).unlink()
+    html = render_report(run)
+    text = _text(html)
+    assert "Missing from this run folder: posterior.nc, summary.csv." in text
+    assert "posterior.nc is missing: no diagnostic figures." in text
+    assert "Pooling factor not recorded (pooling.csv is missing)." in text
+    assert "No posterior predictive draws were stored" in text
+    assert len(Page(html).find("img")) == 1  # the pooling plot needs only the CSV
+
+
+def test_run_without_diagnostics_is_marked_unchecked(run_root, tmp_path):
+    run = copy_run(build_run(run_root), tmp_path / "unchecked")
+    (run / "diagnostics.json").unlink()
+    verdict = Page(render_report(run)).find("section", id="verdict")[0]
+    assert "unknown" in verdict[1]["class"]
+    assert "Gate not evaluated" in verdict[2]
+
+
+# --- writing ------------------------------------------------------------------------
+
+def test_write_report_replaces_files_atomically(run_root, tmp_path):
+    run = copy_run(build_run(run_root), tmp_path / "rewrite")
+    written = write_report(run)
+    assert set(written) == {"report.html", "summary.md"}
+    first = (run / "report.html").read_text()
+    (run / "diagnostics.json").write_text("{not json")
+    with pytest.raises(RunFolderError, match=re.escape("diagnostics.json is not valid JSON")):
+        write_report(run)
+    assert (run / "report.html").read_text() == first
+    assert sorted(p.name for p in run.iterdir() if p.name.startswith(".")) == []
+
+
+def test_not_a_run_folder_is_a_clear_error(tmp_path):
+    with pytest.raises(RunFolderError, match=re.escape("run folder not found")):
+        render_report(tmp_path / "nowhere")
+    with pytest.raises(RunFolderError, match=re.escape("not a run folder (none of")):
+        render_report(tmp_path)
+
+
+# --- pieces -------------------------------------------------------------------------
+
+def test_check_line_states_the_miss():
+    low = CheckLine("ess_bulk", "Bulk ESS", 212.0, 400.0, ">=", "farm__sd[intercept]", False)
+    assert low.sentence() == ("Bulk ESS 212 on farm__sd[intercept]: must be at least 400; "
+                              "short of the limit by 188 (47% short)")
+    high = CheckLine("r_hat", "R-hat", 1.05, 1.01, "<=", "b[intercept]", False)
+    assert high.sentence() == "R-hat 1.05 on b[intercept]: must be at most 1.01; over the limit by 0.04"
+
+
+def test_fmt_keeps_four_significant_digits():
+    assert [fmt(v) for v in (4.12345, 0.012345, 1234.0, 123456.7, 0.00012, float("nan"), None)] \
+        == ["4.123", "0.01235", "1234", "123,457", "1.200e-04", "-", "-"]
+
+
+def test_thousands_of_groups_draw_a_capped_scatter():
+    rng = np.random.default_rng(3)
+    n = rng.integers(1, 50, 5000)
+    own = rng.normal(0, 1, 5000)
+    rows = pd.DataFrame({"factor": "depot", "group": [f"d{i}" for i in range(5000)],
+                         "term": "intercept", "n": n, "no_pooling": own,
+                         "complete_pooling": 0.0, "partial_mean": own * n / (n + 5),
+                         "lower": own - 1, "upper": own + 1})
+    plot = figures.pooling_plot(rows, "depot", "intercept", "bernoulli", 0.94)
+    assert "Drawn: 3000 of 5000 groups" in plot.caption
+    assert "log-odds" in base64.b64decode(plot.uri.split(",", 1)[1]).decode()
+    assert "5000 groups" in plot.alt
