@@ -139,8 +139,8 @@ def test_failing_verdict_names_check_value_limit_parameter_and_advice(failing):
     check = next(c for c in diagnostics["checks"] if c["name"] == "ess_bulk")
     verdict = Page(html).find("section", id="verdict")[0][2]
     assert verdict.startswith("Verdict \u2716 Gate failed (")
-    assert (f"Bulk ESS {fmt(check['value'])} on {check['worst_parameter']}: must be at least "
-            f"100,000; short of the limit by {fmt(100000 - check['value'])}") in verdict
+    assert (f"Bulk ESS {round(check['value'])} on {check['worst_parameter']}: must be at least "
+            f"100,000; short of the limit by {fmt(round(100000 - check['value']))}") in verdict
     assert "Run longer chains: raise sampling.draws to 2000." in verdict
     assert "do not use them" in verdict
     # Estimates and pooling sections are marked, and every figure is stamped.

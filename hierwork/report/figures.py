@@ -179,8 +179,7 @@ def _forest(rows, axis: str, interval: float, complete) -> Figure:
     ax.set_ylim(-0.7, len(rows) - 0.3)
     ax.set_xlabel(_text(axis, 80))
     ax.grid(axis="y", visible=False)
-    ax.legend(loc="upper left", bbox_to_anchor=(0, -0.55 / max(len(rows), 4) - 0.06),
-              ncols=2, frameon=False)
+    fig.legend(loc="outside lower center", ncols=2, frameon=False)
     return fig
 
 

@@ -241,7 +241,7 @@ def _estimates_section(run: RunFiles, v: Verdict, stamp: str | None) -> Raw:
 def _checks_table(v: Verdict) -> Raw:
     if not v.checks:
         return el("p", "diagnostics.json is missing: no checks to show.", class_="note")
-    rows = [el("tr", el("td", c.label, class_="label"), el("td", fmt(c.value)),
+    rows = [el("tr", el("td", c.label, class_="label"), el("td", c.value_text),
                el("td", c.limit_text), el("td", c.parameter or "-", class_="label"),
                el("td", "pass" if c.passed else "FAIL", class_=None if c.passed else "bad"))
             for c in v.checks]

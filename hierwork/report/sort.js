@@ -1,5 +1,6 @@
 // Sort a table by a column when its header button is pressed (numbers by value).
 document.querySelectorAll("table.sortable").forEach(function (table) {
+  table.classList.add("sort-ready");
   table.querySelectorAll("th button").forEach(function (button, column) {
     button.addEventListener("click", function () {
       var th = button.parentNode, up = th.getAttribute("aria-sort") !== "ascending";

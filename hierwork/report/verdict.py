@@ -68,15 +68,24 @@ class CheckLine:
         if self.passed or self.value is None or self.threshold is None:
             return ""
         gap = abs(float(self.value) - float(self.threshold))
+        if self.name.startswith("ess"):
+            gap = round(gap)
         text = f"{'short of' if self.comparison.startswith('>') else 'over'} the limit by {fmt(gap)}"
         if self.comparison.startswith(">") and self.threshold:
             text += f" ({gap / float(self.threshold):.0%} short)"
         return text
 
+    @property
+    def value_text(self) -> str:
+        """The value; effective sample sizes as whole draws."""
+        if self.name.startswith("ess") and self.value is not None:
+            return fmt(round(float(self.value)))
+        return fmt(self.value)
+
     def sentence(self) -> str:
         """One line: ``Bulk ESS 212 on b[intercept]: must be at least 400; short ...``."""
         where = f" on {self.parameter}" if self.parameter else ""
-        text = f"{self.label} {fmt(self.value)}{where}: must be {self.limit_text}"
+        text = f"{self.label} {self.value_text}{where}: must be {self.limit_text}"
         return f"{text}; {self.miss_text}" if self.miss_text else text
 
 
