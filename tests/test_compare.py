@@ -1,0 +1,108 @@
+"""hierwork compare, and the report and compare commands as a user runs them."""
+from __future__ import annotations
+
+import json
+import subprocess
+import sys
+
+import pandas as pd
+import pytest
+
+from hierwork.report import compare_runs
+from hierwork.report.compare import spec_differences
+from test_report_fixture import HOSTILE, Page, build_run, copy_run, run_root  # noqa: F401
+
+
+def _cli(*args):
+    return subprocess.run([sys.executable, "-m", "hierwork", *map(str, args)],
+                          capture_output=True, text=True, timeout=300)
+
+
+def test_spec_differences_are_dotted_keys():
+    a = {"sampling": {"draws": 1000, "seed": 1}, "groups": {"farm": {"column": "farm"}}}
+    b = {"sampling": {"draws": 500, "seed": 1},
+         "groups": {"farm": {"column": "farm", "parameterisation": "non_centred"}}}
+    assert spec_differences(a, b) == [("sampling.draws", "1000", "500"),
+                                      ("groups.farm.parameterisation", "(absent)", "non_centred")]
+    assert spec_differences(a, a) == []
+
+
+def test_moved_estimates_are_those_shifted_by_more_than_their_sd(run_root):
+    a, b = build_run(run_root), build_run(run_root, shift=0.5)
+    comparison = compare_runs(a, b)
+    # The shifted run adds exactly 0.5 to every partial mean and leaves the SDs alone,
+    # so a group moved exactly when 0.5 exceeds its posterior SD.
+    table = pd.read_csv(a / "group_estimates.csv", keep_default_na=False)
+    expected = set(table.loc[table["partial_sd"] < 0.5, "group"])
+    assert set(comparison.moved_groups["group"]) == expected and expected
+    assert comparison.moved_groups["change"].round(12).eq(0.5).all()
+    ratios = comparison.moved_groups["change_in_sd"].abs()
+    assert ratios.is_monotonic_decreasing
+    assert comparison.moved_parameters.empty and comparison.spec_changes == []
+    assert comparison.same_data is True
+    # Symmetric in A and B: the same groups moved, in the other direction.
+    back = compare_runs(b, a)
+    assert set(back.moved_groups["group"]) == expected
+    assert back.moved_groups["change"].round(12).eq(-0.5).all()
+
+
+def test_compare_reports_spec_data_and_diagnostics_changes(run_root, tmp_path):
+    a = build_run(run_root)
+    b = copy_run(build_run(run_root, failing=True), tmp_path / "b")
+    provenance = json.loads((b / "provenance.json").read_text())
+    provenance["data_sha256"] = "0" * 64
+    (b / "provenance.json").write_text(json.dumps(provenance))
+    text = compare_runs(a, b).text()
+    assert "Data: DIFFERENT file contents" in text
+    assert "Gate: A passed; B FAILED (R-hat, Bulk ESS)." in text
+    assert "Spec differences (2):" in text
+    assert "gate.ess_bulk_min  100   100000" in text
+    bulk = [line.split() for line in text.splitlines() if line.strip().startswith("Bulk ESS")][0]
+    assert bulk[-2:] == ["pass", "FAIL"]
+
+
+def test_compare_html_escapes_labels_and_is_self_contained(run_root):
+    html = compare_runs(build_run(run_root), build_run(run_root, shift=0.5)).html()
+    page = Page(html)
+    assert page.errors == []
+    assert "<script>alert(1)" not in html
+    assert any(text == HOSTILE for _, _, text in page.find("td"))
+    assert len(page.find("script")) == 1 and not page.find("img")
+    assert "http://" not in html and "https://" not in html
+
+
+def test_groups_in_one_run_only_are_listed(run_root, tmp_path):
+    a = build_run(run_root)
+    b = copy_run(a, tmp_path / "fewer")
+    table = pd.read_csv(b / "group_estimates.csv", keep_default_na=False)
+    table[table["group"] != "west_03"].to_csv(b / "group_estimates.csv", index=False)
+    comparison = compare_runs(a, b)
+    assert comparison.only_a == [["farm", "west_03", "intercept"]] and comparison.only_b == []
+    assert "Groups only in A (1): farm/west_03/intercept" in comparison.text()
+
+
+@pytest.mark.slow
+def test_report_and_compare_commands(run_root, tmp_path):
+    passing = copy_run(build_run(run_root), tmp_path / "passing")
+    failing = copy_run(build_run(run_root, failing=True), tmp_path / "failing")
+    done = _cli("report", passing)
+    assert done.returncode == 0, done.stderr
+    assert (passing / "report.html").is_file() and (passing / "summary.md").is_file()
+    assert done.stdout.splitlines()[-1] == "Gate passed: all 5 convergence checks met their limits."
+    done = _cli("report", failing)
+    assert done.returncode == 3  # contracts.md: fitted but the gate failed
+    assert "do not use these estimates" in done.stdout
+    out = tmp_path / "compare.html"
+    done = _cli("compare", passing, failing, "--html", out)
+    assert done.returncode == 0, done.stderr
+    assert "Gate: A passed; B FAILED (R-hat, Bulk ESS)." in done.stdout and out.is_file()
+
+
+def test_commands_reject_a_missing_run_folder_in_one_line(tmp_path):
+    done = _cli("report", tmp_path / "nowhere")
+    assert done.returncode == 2 and done.stdout == ""
+    assert done.stderr == (f"hierwork: error: {tmp_path / 'nowhere'}: run folder not found "
+                           "(give the --out folder of 'hierwork fit')\n")
+    done = _cli("compare", tmp_path, tmp_path / "nowhere")
+    assert done.returncode == 2 and len(done.stderr.splitlines()) == 1
+    assert "not a run folder" in done.stderr
