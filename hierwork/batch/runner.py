@@ -54,8 +54,8 @@ class AttemptTask:
         return self.folder / f"attempt-{self.number}.log"
 
 
-class BatchStopped(Exception):
-    """The batch process was asked to stop (SIGTERM)."""
+class BatchStopped(KeyboardInterrupt):
+    """The batch process was asked to stop (SIGTERM); handled like Ctrl-C."""
 
 
 def run_jobs(batch_dir, jobs: list[JobDef], executor, slots: int, sources: list[str]) -> dict:
@@ -142,7 +142,7 @@ class _Loop:
                     self._record(task, outcome)
                 if self.view:
                     self.view.refresh()
-        except (KeyboardInterrupt, BatchStopped):
+        except KeyboardInterrupt:
             self.executor.close()
             self.queue.interrupt_stale()
             self.log.write("batch stopped; resume it with 'hierwork batch --resume'")

@@ -1,7 +1,9 @@
 """``hierwork batch SPEC_OR_FOLDER... --out DIR``: fit many specs, resumably, with remedies."""
 from __future__ import annotations
 
-from . import EXIT_GATE, EXIT_INPUT, EXIT_OK
+import sys
+
+from . import EXIT_GATE, EXIT_OK
 
 
 def register(sub) -> None:
@@ -40,10 +42,15 @@ def run(args) -> int:
     if not args.paths and not args.resume:
         raise HierworkError("no specs given", where="hierwork batch",
                             hint="name spec files or folders, or --resume DIR")
-    tally = run_batch(args.paths, out, workers=args.workers, scheduler=args.scheduler,
-                      resume=bool(args.resume))
+    try:
+        tally = run_batch(args.paths, out, workers=args.workers, scheduler=args.scheduler,
+                          resume=bool(args.resume))
+    except KeyboardInterrupt:
+        print(f"hierwork: batch stopped; finished runs are kept; continue with: hierwork batch --resume {out}",
+              file=sys.stderr)
+        return 130
     print(f"batch finished: {', '.join(f'{n} {s}' for s, n in tally.items())}; summary: {out}/index.html")
-    return EXIT_OK if set(tally) <= {"passed"} else (EXIT_INPUT if not tally else EXIT_GATE)
+    return EXIT_OK if set(tally) == {"passed"} else EXIT_GATE
 
 
 def dry_run_lines(jobs) -> list[str]:
