@@ -53,11 +53,22 @@ _LINK_SCALE = {"bernoulli": "log-odds", "binomial": "log-odds", "poisson": "log 
 
 @dataclass(frozen=True)
 class Plot:
-    """An embedded figure: ``uri`` (data URI), ``alt`` text and ``caption``."""
+    """An embedded figure: ``uri`` (data URI), ``alt`` text and ``caption``.
+
+    Shown inline by Jupyter (``_repr_svg_``).
+    """
 
     uri: str
     alt: str
     caption: str
+
+    @property
+    def svg(self) -> str:
+        """The SVG document."""
+        return base64.b64decode(self.uri.split(",", 1)[1]).decode("utf-8")
+
+    def _repr_svg_(self) -> str:
+        return self.svg
 
 
 def _text(value, width: int = 30) -> str:
