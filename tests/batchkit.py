@@ -1,18 +1,20 @@
 """Helpers for the batch tests: tiny invented specs and data, and running ``hierwork`` as a user does."""
 import json
 import os
+import signal
 import subprocess
 import sys
 import time
 
 import numpy as np
 import pandas as pd
+import psutil
 
 from hierwork.batch.queue import Queue
 
 # Small draws keep each fit to seconds; the gate's ESS minimum is lowered to
 # match (400 is common practice for 4 chains x 1000 draws, not for 2 x 500).
-SAMPLING = "sampling: {chains: 2, warmup: 1000, draws: 1000, seed: %d}\n"
+SAMPLING = "sampling: {chains: 2, warmup: 1000, draws: 1000, engine: pymc, seed: %d}\n"
 GATE = "gate: {ess_bulk_min: 100, ess_tail_min: 100}\n"
 
 
@@ -97,3 +99,18 @@ def pid_alive(pid) -> bool:
             return handle.read().split(")")[-1].split()[0] != "Z"
     except OSError:
         return True
+
+
+def process(pid):
+    """``psutil.Process(pid)``, or None if it is gone."""
+    try:
+        return psutil.Process(pid)
+    except psutil.Error:
+        return None
+
+
+def kill_session(proc: subprocess.Popen) -> None:
+    """Make sure a background command started by a test is gone (with its process group)."""
+    if proc.poll() is None:
+        os.killpg(proc.pid, signal.SIGKILL)
+        proc.wait()

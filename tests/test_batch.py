@@ -8,8 +8,8 @@ import pytest
 
 from hierwork.cli import main
 
-from batchkit import (assert_run_folders_sound, batch_state, hierwork, line_output, pid_alive,
-                      running_attempt, start_batch, wait_for)
+from batchkit import (assert_run_folders_sound, batch_state, hierwork, kill_session, line_output,
+                      pid_alive, process, running_attempt, start_batch, wait_for)
 
 
 @pytest.mark.slow
@@ -20,13 +20,18 @@ def test_batch_killed_during_second_job_resumes_without_rerunning_the_first(tmp_
         line_output(specs, name, group_sd=1.0, seed=i + 1)
     out = tmp_path / "batch"
     batch = start_batch(specs, "--out", out, "--workers", "1")
-    attempt = wait_for(lambda: running_attempt(out, "b_second"), what="the second job to start")
-    wait_for(lambda: attempt["pid"] and pid_alive(attempt["pid"]), what="its fit process")
-    wait_for(lambda: "NUTS" in (out / "jobs/b_second/attempt-1.log").read_text(), what="sampling to begin")
-    os.kill(batch.pid, signal.SIGKILL)
-    batch.wait()
-    # the fit dies with the batch (parent-death signal), so it cannot finish into the folder later
-    wait_for(lambda: not pid_alive(attempt["pid"]), timeout=10, what="the orphaned fit to die")
+    try:
+        attempt = wait_for(lambda: running_attempt(out, "b_second"), what="the second job to start")
+        fit = wait_for(lambda: attempt["pid"] and process(attempt["pid"]), what="its fit process")
+        # cores=2 (from --workers 1 on 2 cores): chain processes appear when sampling starts
+        chains = wait_for(fit.children, what="its chain processes")
+        os.kill(batch.pid, signal.SIGKILL)
+        batch.wait()
+        # the fit dies with the batch (parent-death signal), so it cannot finish into the folder later
+        for proc in [fit, *chains]:
+            wait_for(lambda: not pid_alive(proc.pid), timeout=20, what=f"orphan {proc.pid} to die")
+    finally:
+        kill_session(batch)
     assert batch_state(out)["a_first"] == ("passed", ["passed"])
     assert batch_state(out)["b_second"][0] == "running"  # as the killed batch left it
     first = out / "jobs/a_first/attempt-1/diagnostics.json"

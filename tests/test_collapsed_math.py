@@ -225,7 +225,7 @@ def test_draws_match_dense_conditional_one_factor():
     st_ = cell_stats(y, X, g)
     b, L, s, D = rng.normal(size=3), _random_chol(rng, 2), 0.8, 6000
     u = draw_effects(st_, [Level((0, 1), 3)], np.tile(b, (D, 1)), [np.tile(L, (D, 1, 1))],
-                     np.full(D, s), rng=np.random.default_rng(10))[0]
+                     np.full(D, s), rng=np.random.default_rng(10))[0][0]
     for j in range(3):
         m = g == j
         mean, cov = _dense_conditional(X[m], y[m], b, s, [(X[m][:, [0, 1]], L @ L.T)])
@@ -243,9 +243,10 @@ def test_draws_match_dense_conditional_nested():
     levels = [Level((0,), n_plot, plot_farm), Level((0, 1), n_farm)]
     b, s, D = np.array([0.8, -0.7]), 0.7, 6000
     chols = [np.array([[0.6]]), _random_chol(rng, 2)]
-    plots_u, farms_u = draw_effects(st_, levels, np.tile(b, (D, 1)),
-                                    [np.tile(c, (D, 1, 1)) for c in chols], np.full(D, s),
-                                    rng=np.random.default_rng(12))
+    (plots_u, farms_u), ll = draw_effects(st_, levels, np.tile(b, (D, 1)),
+                                          [np.tile(c, (D, 1, 1)) for c in chols], np.full(D, s),
+                                          rng=np.random.default_rng(12))
+    np.testing.assert_allclose(ll[0], collapsed_group_loglik(st_, levels, b, chols, s, xp=np))
     for f in range(n_farm):
         m = plot_farm[plot] == f
         kids = np.flatnonzero(plot_farm == f)
@@ -281,7 +282,7 @@ def test_eight_schools_conditional_draws(schools):
     st_ = cell_stats(y, np.ones((8, 1)), np.arange(8), known_sd=se)
     mu, tau, D = 5.0, 8.0, 8000
     u = draw_effects(st_, [Level((0,), 8)], np.full((D, 1), mu), [np.full((D, 1, 1), tau)],
-                     rng=np.random.default_rng(13))[0][:, :, 0]
+                     rng=np.random.default_rng(13))[0][0][:, :, 0]
     prec = 1 / se**2 + 1 / tau**2
     z = (mu + u.mean(0) - (y / se**2 + mu / tau**2) / prec) / np.sqrt(1 / prec / D)
     assert np.max(np.abs(z)) < 4.5

@@ -1,0 +1,32 @@
+"""Shared fixtures: small specs written into temporary folders, and a quiet environment."""
+from __future__ import annotations
+
+import logging
+import os
+import warnings
+from pathlib import Path
+
+import pytest
+
+DATA = Path(__file__).parent / "data"
+
+warnings.filterwarnings("ignore", message=".*ArviZ is undergoing a major refactor.*")
+warnings.filterwarnings("ignore", message=".*could not link to a BLAS.*")
+for _name in ("pymc", "pytensor", "arviz"):
+    logging.getLogger(_name).setLevel(logging.ERROR)
+os.environ.setdefault("MPLBACKEND", "Agg")
+
+
+def write_spec(folder: Path, text: str, name: str = "spec.yaml") -> Path:
+    """Write a spec file (dedented) and return its path."""
+    import textwrap
+
+    path = folder / name
+    path.write_text(textwrap.dedent(text).lstrip(), encoding="utf-8")
+    return path
+
+
+@pytest.fixture
+def spec_writer(tmp_path):
+    """Callable writing a spec into ``tmp_path``."""
+    return lambda text, name="spec.yaml": write_spec(tmp_path, text, name)
