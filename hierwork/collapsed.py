@@ -201,7 +201,8 @@ def collapsed_group_loglik(stats: CellStats, levels: list[Level], b, chols, sigm
     """
     xp = _namespace(xp)
     _check_sigma(stats, sigma)
-    ll, _ = _upward(xp, stats, levels, _layout(levels, stats.n_cells), b, chols, sigma)
+    ll, _ = _upward(xp, stats, levels, _layout(levels, stats.n_cells), _f64(xp, b),
+                    [_f64(xp, L) for L in chols], _f64(xp, sigma))
     return ll
 
 
@@ -236,8 +237,10 @@ def reduced_loglik(stats: CellStats, b, effects, sigma=None, xp=None):
     xp = _namespace(xp)
     _check_sigma(stats, sigma)
     p = stats.n_terms
-    t = b[None, :]
+    sigma = _f64(xp, sigma)
+    t = _f64(xp, b)[None, :]
     for u, cols, cell_group in effects:
+        u = _f64(xp, u)
         embed = np.zeros((len(cols), p))
         embed[np.arange(len(cols)), list(cols)] = 1.0
         t = t + (u[np.asarray(cell_group)][:, :, None] * embed[None]).sum(axis=1)
@@ -269,8 +272,12 @@ def draw_effects(stats: CellStats, levels: list[Level], b, chols, sigma=None,
 
     Returns
     -------
-    list of (D, G_k, q_k) arrays, finest level first: the effects (offsets from
-    the population coefficients, original units).
+    effects : list of (D, G_k, q_k) arrays
+        Finest level first: the effects (offsets from the population
+        coefficients, original units).
+    group_loglik : (D, G_top) array
+        Collapsed log-likelihood of each top-level group at each draw (for
+        leave-one-group-out comparisons).
     """
     if rng is None:
         raise ValueError("pass a seeded numpy Generator")
@@ -279,9 +286,10 @@ def draw_effects(stats: CellStats, levels: list[Level], b, chols, sigma=None,
     b = np.asarray(b, float)
     n_draws, p = b.shape
     out = [np.empty((n_draws, lv.n_groups, lv.q)) for lv in levels]
+    group_ll = np.empty((n_draws, levels[-1].n_groups))
     for d in range(n_draws):
         L_d = [np.asarray(c[d], float) for c in chols]
-        _, factors = _upward(np, stats, levels, steps, b[d], L_d,
+        group_ll[d], factors = _upward(np, stats, levels, steps, b[d], L_d,
                              None if sigma is None else float(sigma[d]), keep_factors=True)
         above = np.zeros((levels[-1].n_groups, p))          # ancestors' effects, by column
         for k in range(len(levels) - 1, -1, -1):
@@ -295,7 +303,7 @@ def draw_effects(stats: CellStats, levels: list[Level], b, chols, sigma=None,
             above[:, list(level.cols)] += u
             if k > 0:
                 above = above[levels[k - 1].parent]
-    return out
+    return out, group_ll
 
 
 def _backward_solve(R, v):
@@ -308,6 +316,11 @@ def _backward_solve(R, v):
             s = s - R[m][i] * w[m]
         w[i] = s / R[i][i]
     return np.stack(w, axis=1)
+
+
+def _f64(xp, x):
+    """Compute in double precision whatever the inputs' dtype (PyTensor keeps float32 constants)."""
+    return x if xp is np or x is None else xp.cast(x, "float64")
 
 
 def _namespace(xp):
