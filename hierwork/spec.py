@@ -12,6 +12,8 @@ import re
 from dataclasses import dataclass, field
 from pathlib import Path
 
+from .batch.remedies import parse_policy
+from .batch.variants import parse_variants
 from .errors import SpecError, choices_hint
 from .yamlsource import YamlDocument, join, read_yaml
 
@@ -40,8 +42,9 @@ class Key:
     """One entry of the spec's key table.
 
     ``kind`` is one of ``str int float bool choice list section named prior
-    predictor``; ``section`` has fixed ``fields``; ``named`` maps user-chosen
-    names to values of schema ``item``; ``list`` holds items of schema ``item``.
+    predictor batch``; ``section`` has fixed ``fields``; ``named`` maps user-chosen
+    names to values of schema ``item``; ``list`` holds items of schema ``item``;
+    ``batch`` values are validated by ``check(value, where)`` from hierwork.batch.
     """
 
     kind: str
@@ -55,6 +58,7 @@ class Key:
     pattern: re.Pattern | None = None
     fields: dict | None = None
     item: "Key | None" = None
+    check: object = None
 
 
 FACTOR_KEYS = {
@@ -125,6 +129,12 @@ SPEC_KEYS = {
         "interval": Key("float", "Probability of the central interval reported (lower, upper).", 0.94,
                         low=0.5, high=1.0, open_high=True),
     }),
+    # -- batch keys (owned by hierwork/batch, see docs/batch.md; 'fit' ignores them) --
+    "variants": Key("batch", "Named variants ([{name, set: {dotted.key: value}}]) or a cartesian "
+                    "{sweep: {dotted.key: [values]}} that 'hierwork batch' runs as separate jobs.", None,
+                    check=parse_variants),
+    "remedies": Key("batch", "Retry policy when a batch job fails its gate: true (default steps), false "
+                    "(no retries) or {max_attempts, steps}.", None, check=parse_policy),
 }
 
 
@@ -353,6 +363,9 @@ def _validate_value(value, key: Key, path: str, doc: YamlDocument):
         return value
     if kind in ("int", "float"):
         return _validate_number(value, key, where)
+    if kind == "batch":
+        key.check(value, where)
+        return value
     raise AssertionError(f"unknown key kind {kind}")
 
 

@@ -13,8 +13,8 @@ import psutil
 from hierwork.batch.queue import Queue
 
 # Small draws keep each fit to seconds; the gate's ESS minimum is lowered to
-# match (400 is common practice for 4 chains x 1000 draws, not for 2 x 500).
-SAMPLING = "sampling: {chains: 2, warmup: 1000, draws: 1000, engine: pymc, seed: %d}\n"
+# match (400 is common practice for 4 chains x 1000 draws; these fits keep 4 x 500).
+SAMPLING = "sampling: {chains: 4, warmup: 500, draws: 500, engine: pymc, seed: %d}\n"
 GATE = "gate: {ess_bulk_min: 100, ess_tail_min: 100}\n"
 
 
@@ -114,3 +114,23 @@ def kill_session(proc: subprocess.Popen) -> None:
     if proc.poll() is None:
         os.killpg(proc.pid, signal.SIGKILL)
         proc.wait()
+
+
+def fit_process(root):
+    """The ``python -m hierwork fit`` process at or below ``root`` (e.g. the guard or a Dask worker)."""
+    try:
+        for proc in [root, *root.children(recursive=True)]:
+            if proc.cmdline()[1:4] == ["-m", "hierwork", "fit"]:
+                return proc
+    except psutil.Error:
+        return None
+    return None
+
+
+def chain_processes(fit):
+    """Python processes below a fit (PyMC's chain workers), at least two once sampling runs."""
+    try:
+        found = [p for p in fit.children(recursive=True) if "python" in p.name()]
+    except psutil.Error:
+        return None
+    return found if len(found) >= 2 else None

@@ -8,8 +8,8 @@ import pytest
 
 from hierwork.cli import main
 
-from batchkit import (assert_run_folders_sound, batch_state, hierwork, kill_session, line_output,
-                      pid_alive, process, running_attempt, start_batch, wait_for)
+from batchkit import (assert_run_folders_sound, batch_state, chain_processes, fit_process, hierwork,
+                      kill_session, line_output, pid_alive, process, running_attempt, start_batch, wait_for)
 
 
 @pytest.mark.slow
@@ -21,14 +21,15 @@ def test_batch_killed_during_second_job_resumes_without_rerunning_the_first(tmp_
     out = tmp_path / "batch"
     batch = start_batch(specs, "--out", out, "--workers", "1")
     try:
-        attempt = wait_for(lambda: running_attempt(out, "b_second"), what="the second job to start")
-        fit = wait_for(lambda: attempt["pid"] and process(attempt["pid"]), what="its fit process")
+        guard = wait_for(lambda: (row := running_attempt(out, "b_second")) and row["pid"] and process(row["pid"]),
+                         what="the second job to start")
+        fit = wait_for(lambda: fit_process(guard), what="its fit process")
         # cores=2 (from --workers 1 on 2 cores): chain processes appear when sampling starts
-        chains = wait_for(fit.children, what="its chain processes")
+        chains = wait_for(lambda: chain_processes(fit), what="its chain processes")
         os.kill(batch.pid, signal.SIGKILL)
         batch.wait()
         # the fit dies with the batch (parent-death signal), so it cannot finish into the folder later
-        for proc in [fit, *chains]:
+        for proc in [guard, fit, *chains]:
             wait_for(lambda: not pid_alive(proc.pid), timeout=20, what=f"orphan {proc.pid} to die")
     finally:
         kill_session(batch)
@@ -120,6 +121,17 @@ def test_dry_run_lists_variants_and_writes_nothing(tmp_path, capsys):
         f"  crop.parameterisation-non_centred  from {spec}  groups.line.parameterisation='non_centred'  "
         "[up to 1 attempts; remedies: none]"]
     assert not (tmp_path / "batch").exists()
+
+
+def test_dry_run_validates_each_variant_like_fit(tmp_path, capsys):
+    spec = line_output(tmp_path, "crop", group_sd=1.0, extra=(
+        "variants: [{name: ok}, {name: typo, set: {groups.line.parameterisation: centered}}]\n"))
+    code, stdout, _ = in_process(capsys, "batch", spec, "--dry-run")
+    assert code == 0
+    assert stdout.splitlines()[1].startswith("  crop.ok  from ")
+    assert stdout.splitlines()[2] == (
+        f"  crop.typo  [cannot run: {spec}:6: groups.line.parameterisation: 'centered' is not allowed "
+        "(did you mean 'centred'? valid: 'auto', 'centred', 'non_centred')]")
 
 
 def test_batch_usage_errors_exit_2_with_one_line(tmp_path, capsys):

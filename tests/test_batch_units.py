@@ -273,3 +273,23 @@ def test_summary_escapes_user_strings_and_lists_attempts(tmp_path):
     row = next(line for line in md.splitlines() if line.startswith("| a<b>"))
     assert row.split(" | ")[1:6] == ["passed the gate", "2", "1.003", "640", "0"]
     assert "2. target_accept: 0.95 -> passed" in md
+
+
+# ---------------------------------------------------------------- spec keys
+def test_spec_accepts_variants_and_remedies_and_expands_them(tmp_path):
+    from hierwork.spec import load_spec
+
+    path = write_spec(tmp_path, "crop", "variants: {sweep: {sampling.draws: [300, 600]}}\n"
+                                        "remedies: {max_attempts: 2}\n")
+    spec = load_spec(path)
+    assert expand_variants(spec) == [("crop.draws-300", {"sampling.draws": 300}),
+                                     ("crop.draws-600", {"sampling.draws": 600})]
+
+
+def test_spec_names_file_line_and_key_of_a_bad_remedies_value(tmp_path):
+    from hierwork.spec import load_spec
+
+    path = write_spec(tmp_path, "crop", "remedies: {max_attempts: 0}\n")
+    with pytest.raises(SpecError, match=re.escape(
+            f"{path}:6: remedies.max_attempts: max_attempts must be a whole number of at least 1, got 0")):
+        load_spec(path)

@@ -5,10 +5,12 @@ crashes, and lets PyMC start its chain processes even under a Dask worker
 (whose task processes are daemonic and may not start multiprocessing
 children; a process started with :mod:`subprocess` is not daemonic).
 
-Children run in their own session (process group), so the batch can kill a
-fit with all its chain processes; on Linux they also receive SIGKILL when the
-process that started them dies, so a ``kill -9`` of the batch leaves no
-orphaned fit that could finish later into a folder the batch thinks is empty.
+Each fit runs under :mod:`~hierwork.batch.guard`, which leads its own session
+(process group), so the batch can kill a fit with all its chain processes at
+once. On Linux the guard also receives a parent-death signal and then kills
+its group, so a ``kill -9`` of the batch (or of a Dask worker) leaves no
+orphaned fit or chain sampling on, or finishing later into a folder the batch
+thinks is empty.
 """
 from __future__ import annotations
 
@@ -23,6 +25,7 @@ from pathlib import Path
 
 #: exit codes of ``hierwork fit`` (docs/contracts.md)
 EXIT_STATUS = {0: "passed", 3: "failed", 2: "invalid"}
+GUARD = str(Path(__file__).with_name("guard.py"))
 _PR_SET_PDEATHSIG = 1
 _LIBC = ctypes.CDLL(None, use_errno=True) if sys.platform.startswith("linux") else None
 #: numeric libraries use one thread per process; chains already run in parallel
@@ -75,13 +78,17 @@ def child_env() -> dict:
 
 def _die_with_parent() -> None:  # runs in the child between fork and exec
     if _LIBC is not None:
-        _LIBC.prctl(_PR_SET_PDEATHSIG, signal.SIGKILL)
+        _LIBC.prctl(_PR_SET_PDEATHSIG, signal.SIGTERM)
 
 
 def launch(argv: list[str], log_path, cwd=None) -> subprocess.Popen:
-    """Start ``argv`` in its own session with output appended to ``log_path``."""
+    """Start ``argv`` under the guard in a new session, output appended to ``log_path``.
+
+    The returned process is the guard; its pid is also the process group to kill.
+    """
+    guarded = [sys.executable, GUARD, str(os.getpid()), *argv]
     with open(log_path, "ab") as log:
-        return subprocess.Popen(argv, stdout=log, stderr=subprocess.STDOUT, stdin=subprocess.DEVNULL,
+        return subprocess.Popen(guarded, stdout=log, stderr=subprocess.STDOUT, stdin=subprocess.DEVNULL,
                                 cwd=cwd, env=child_env(), start_new_session=True,
                                 preexec_fn=_die_with_parent)
 

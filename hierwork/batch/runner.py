@@ -75,9 +75,14 @@ def run_jobs(batch_dir, jobs: list[JobDef], executor, slots: int, sources: list[
     batch_dir = Path(batch_dir)
     (batch_dir / "jobs").mkdir(parents=True, exist_ok=True)
     queue = Queue(batch_dir, create=True)
-    log = progress.Log(batch_dir / "batch.log")
     try:
         queue.acquire()
+    except BaseException:
+        queue.close()
+        executor.close()
+        raise
+    log = progress.Log(batch_dir / "batch.log")
+    try:
         queue.set_meta("sources", sources)
         queue.set_meta("slots", slots)
         for stale in queue.interrupt_stale():

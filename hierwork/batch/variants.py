@@ -16,8 +16,8 @@ Two forms, both under the spec's ``variants:`` key::
 Each variant becomes the job ``<spec name>.<variant name>``; a sweep's variant
 names are built from the last part of each key and the value, e.g.
 ``parameterisation-centred.target_accept-0_95`` (dots in values become
-``_``). Overrides are dotted spec
-paths, applied exactly like ``hierwork fit --set KEY=VALUE``.
+``_``). Overrides are dotted spec paths, applied exactly like
+``hierwork fit --set KEY=VALUE``.
 """
 from __future__ import annotations
 
@@ -157,8 +157,8 @@ def expand_variants(spec) -> list[tuple[str, dict]]:
     Parameters
     ----------
     spec : Spec or mapping
-        Anything with a ``name`` and an optional ``variants`` (attributes or
-        keys); ``variants`` may be raw YAML or already parsed.
+        A loaded :class:`~hierwork.spec.Spec` (its ``values``) or a mapping
+        with ``name`` and optional ``variants`` (raw YAML or already parsed).
 
     Returns
     -------
@@ -166,9 +166,9 @@ def expand_variants(spec) -> list[tuple[str, dict]]:
         ``[(name, {})]`` for a spec without variants, else one pair per
         variant named ``<name>.<variant>``.
     """
-    get = spec.get if isinstance(spec, Mapping) else lambda key, default=None: getattr(spec, key, default)
-    name = str(get("name"))
-    raw = get("variants")
+    values = spec if isinstance(spec, Mapping) else spec.values
+    name = str(values["name"])
+    raw = values.get("variants")
     variants = raw if isinstance(raw, tuple) else parse_variants(raw)
     if not variants:
         return [(name, {})]

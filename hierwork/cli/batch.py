@@ -23,7 +23,7 @@ def register(sub) -> None:
 
 
 def run(args) -> int:
-    from hierwork.batch import run_batch
+    from hierwork.batch.runner import run_batch
     from hierwork.batch.jobs import load_jobs
     from hierwork.errors import HierworkError
 
@@ -54,11 +54,23 @@ def run(args) -> int:
 
 
 def dry_run_lines(jobs) -> list[str]:
-    """One line per job: name, spec file, overrides and retry policy (or the spec's error)."""
+    """One line per job: name, spec file, overrides and retry policy, or why it cannot run.
+
+    Each job's spec is validated with its overrides (as ``fit`` will), without reading the data.
+    """
+    from hierwork.errors import HierworkError
+    from hierwork.spec import load_spec
+
     lines = [f"{len(jobs)} jobs:"]
     for job in jobs:
-        if job.error:
-            lines.append(f"  {job.name}  [cannot run: {job.error}]")
+        error = job.error
+        if not error:
+            try:
+                load_spec(job.source, {"data": job.spec.get("data"), **job.overrides})
+            except HierworkError as exc:
+                error = str(exc)
+        if error:
+            lines.append(f"  {job.name}  [cannot run: {error}]")
             continue
         sets = " ".join(f"{k}={v!r}" for k, v in job.overrides.items()) or "(as written)"
         steps = ", ".join(s.text() for s in job.policy.steps) or "none"
