@@ -269,3 +269,38 @@ def test_thousands_of_groups_draw_a_capped_scatter():
     assert "Drawn: 3000 of 5000 groups" in plot.caption
     assert "log-odds" in plot.svg
     assert "5000 groups" in plot.alt
+
+
+def test_count_outcome_ppc_compares_shares_per_value():
+    import arviz as az
+
+    rng = np.random.default_rng(5)
+    observed = rng.poisson(2.0, 80)
+    idata = az.from_dict(posterior={"b": rng.normal(size=(2, 50, 1))},
+                         posterior_predictive={"defects": rng.poisson(2.0, (2, 50, 80))},
+                         observed_data={"defects": observed})
+    plot = figures.ppc_plot(idata)
+    assert plot.alt == ("Posterior predictive check of defects: the share of rows at each value "
+                        "of the 80 observed values drawn over 40 data sets replicated from the "
+                        "posterior.")
+    assert figures.ppc_plot(az.from_dict(posterior={"b": rng.normal(size=(2, 50))})) is None
+
+
+def test_hyperparameters_follow_the_posterior_naming_contract():
+    # docs/contracts.md, "Names inside posterior.nc".
+    import arviz as az
+
+    rng = np.random.default_rng(6)
+    idata = az.from_dict(
+        posterior={"b": rng.normal(size=(2, 10, 2)), "residual_sd": rng.random((2, 10)),
+                   "farm__sd": rng.random((2, 10, 2)), "farm__gamma": rng.normal(size=(2, 10, 1)),
+                   "farm__corr": rng.random((2, 10, 2, 2)),
+                   "farm__effect": rng.normal(size=(2, 10, 3, 2))},
+        coords={"term": ["intercept", "nitrogen_kg"], "farm__term": ["intercept", "nitrogen_kg"],
+                "farm__predictor": ["soil_carbon"], "farm": ["a", "b", "c"]},
+        dims={"b": ["term"], "farm__sd": ["farm__term"], "farm__gamma": ["farm__predictor"],
+              "farm__corr": ["farm__term", "farm__term_bis"],
+              "farm__effect": ["farm", "farm__term"]})
+    labels = [label for label, _, _ in figures.hyperparameters(idata.posterior)]
+    assert labels == ["b[intercept]", "b[nitrogen_kg]", "residual_sd", "farm__sd[intercept]",
+                      "farm__sd[nitrogen_kg]", "farm__gamma[soil_carbon]"]

@@ -226,14 +226,14 @@ def _scatter(rows, axis: str, complete) -> tuple[Figure, str]:
 def hyperparameters(posterior) -> list[tuple[str, str, dict]]:
     """The population and variance parameters as ``(label, variable, selection)``.
 
-    Population coefficients ``b``, ``residual_sd``, every ``F__sd`` and any
-    other parameter without dimensions (docs/contracts.md, names inside
-    posterior.nc).
+    Population coefficients ``b``, ``residual_sd``, every ``F__sd``, group-level
+    predictor coefficients ``F__gamma`` and any other parameter without
+    dimensions (docs/contracts.md, names inside posterior.nc).
     """
     chosen = []
     for name, array in posterior.data_vars.items():
         dims = [d for d in array.dims if d not in ("chain", "draw")]
-        if not (name == "b" or name.endswith("__sd") or not dims):
+        if not (name == "b" or name.endswith(("__sd", "__gamma")) or not dims):
             continue
         for index in np.ndindex(*[array.sizes[d] for d in dims]):
             selection = {d: array[d].values[i] for d, i in zip(dims, index)}
