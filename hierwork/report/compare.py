@@ -147,14 +147,15 @@ class Comparison:
                 sections.append(el("p", f"Groups {label}: ",
                                    ", ".join("/".join(map(str, k)) for k in keys)))
         body = el("main",
-                  el("header", el("h1", f"Compare {self.a.name} and {self.b.name}"),
-                     el("p", f"A: {self.a.path}"), el("p", f"B: {self.b.path}")),
+                  el("header", el("h1", f"Compare {self.a.path.name} and {self.b.path.name}"),
+                     el("p", f"A: {self.a.path} (run {self.a.name})"),
+                     el("p", f"B: {self.b.path} (run {self.b.name})")),
                   el("section", el("p", self._data_line()), el("p", self._gate_line()),
                      class_="facts"),
                   sections,
                   el("p", "An estimate counts as moved when its change in posterior mean exceeds "
                           "the larger of its posterior SDs in the two runs.", class_="note"))
-        return page(f"Compare {self.a.name} and {self.b.name}", body)
+        return page(f"Compare {self.a.path.name} and {self.b.path.name}", body)
 
 
 def _plain(value) -> str:
@@ -177,7 +178,7 @@ def _checks(a: RunFiles, b: RunFiles) -> list[tuple]:
     for name in list(by_a) + [n for n in by_b if n not in by_a]:
         ca, cb = by_a.get(name), by_b.get(name)
         label = (ca or cb).label
-        rows.append((label, fmt(ca.value) if ca else "-", fmt(cb.value) if cb else "-",
+        rows.append((label, ca.value_text if ca else "-", cb.value_text if cb else "-",
                      ("pass" if ca.passed else "FAIL") if ca else "-",
                      ("pass" if cb.passed else "FAIL") if cb else "-"))
     return rows
