@@ -304,3 +304,17 @@ def test_hyperparameters_follow_the_posterior_naming_contract():
     labels = [label for label, _, _ in figures.hyperparameters(idata.posterior)]
     assert labels == ["b[intercept]", "b[nitrogen_kg]", "residual_sd", "farm__sd[intercept]",
                       "farm__sd[nitrogen_kg]", "farm__gamma[soil_carbon]"]
+
+
+def test_long_group_tables_are_cut_with_a_pointer_to_the_csv(run_root, monkeypatch):
+    from hierwork.report import html as report_html
+
+    monkeypatch.setattr(report_html, "MAX_TABLE_ROWS", 5)
+    page = Page(render_report(build_run(run_root)))
+    section = page.find("section", id="estimates")[0][2]
+    assert "Showing the first 5 of 12 rows; all are in group_estimates.csv in the run folder." in section
+    assert page.find("a", href="group_estimates.csv")
+    group_table = [a for t, a, _ in page.elements if t == "table" and "sortable" in a.get("class", "")]
+    assert len(group_table) == 1
+    # Header plus rows: 5 groups, 4 parameters (summary.csv), 5 gate checks.
+    assert len(page.find("tr")) == (1 + 5) + (1 + 4) + (1 + 5)
