@@ -312,13 +312,18 @@ def _provenance_section(run: RunFiles) -> Raw:
     return el("section", el("h2", "Provenance"), content, id="provenance")
 
 
+def _fitted(run: RunFiles) -> str:
+    finished = (run.provenance or {}).get("finished")
+    return f" \u00b7 fitted {finished}" if finished else ""
+
+
 def _header(run: RunFiles) -> Raw:
     links = [("verdict", "Verdict"), ("pooling", "Pooling"), ("estimates", "Estimates"),
              ("diagnostics", "Diagnostics"), ("fit", "Fit"), ("provenance", "Provenance"),
              ("caution", "Caution")]
     return el("header",
               el("h1", run.title),
-              el("p", f"Run {run.name} \u00b7 folder {run.path.name}"),
+              el("p", f"Run {run.name}", _fitted(run)),
               el("nav", [el("a", text, href=f"#{key}") for key, text in links],
                  aria_label="Sections"))
 
