@@ -6,12 +6,12 @@ check``), ``fit`` (``hierwork fit``), ``Run`` (a run folder loaded back), and
 """
 __version__ = "0.1.0"
 
-from .api import CheckReport, check, fit  # noqa: E402
+from .api import CheckReport, check, fit, run_demo  # noqa: E402
 from .errors import DataError, HierworkError, RunFolderError, SpecError  # noqa: E402
 from .runs import Run  # noqa: E402
 from .spec import Spec, load_spec, spec_schema  # noqa: E402
 
 __all__ = [
     "CheckReport", "DataError", "HierworkError", "Run", "RunFolderError", "Spec", "SpecError",
-    "check", "fit", "load_spec", "spec_schema", "__version__",
+    "check", "fit", "load_spec", "run_demo", "spec_schema", "__version__",
 ]

@@ -146,3 +146,49 @@ def _version(package: str) -> str | None:
         return metadata.version(package)
     except metadata.PackageNotFoundError:
         return None
+
+
+def demo_specs_folder() -> Path:
+    """The repository's ``model_specs/`` folder (the demo specs)."""
+    return Path(__file__).resolve().parent.parent / "model_specs"
+
+
+def run_demo(out, force: bool = False, only=None, overrides: dict | None = None, echo=None) -> dict:
+    """Regenerate the demo data if missing and fit every demo spec into ``out/<name>``.
+
+    Parameters
+    ----------
+    out : str or Path
+        Folder that receives one run folder per demo spec.
+    force : bool
+        Replace existing run folders.
+    only : list of str, optional
+        Names of the demo specs to fit (file stems); default all.
+    overrides : dict, optional
+        Applied to every spec (e.g. fewer draws for a quick look).
+    echo : callable, optional
+        Receives one progress line per spec.
+
+    Returns
+    -------
+    dict
+        Spec name -> :class:`Run`.
+    """
+    from .demo import DEMO_DATASETS, make_demo_data
+
+    folder = demo_specs_folder()
+    data_dir = folder.parent / "demo" / "data"
+    if not all((data_dir / f"{name}.csv").is_file() for name in DEMO_DATASETS):
+        make_demo_data(data_dir)
+    specs = sorted(folder.glob("*.yaml"))
+    if only:
+        specs = [p for p in specs if p.stem in only]
+    results = {}
+    for path in specs:
+        if echo:
+            echo(f"fitting {path.name} ...")
+        run = fit(path, Path(out) / path.stem, force=force, overrides=overrides)
+        results[path.stem] = run
+        if echo:
+            echo(f"  {'passed' if run.passed else 'FAILED'}: {run.path}")
+    return results

@@ -4,17 +4,30 @@ Variable names are the contract of the run folder (see docs/contracts.md):
 ``b`` (dim ``term``), ``residual_sd``, ``nu``, ``dispersion``, and per factor
 ``F``: ``F__sd`` (dim ``F__term``), ``F__corr``, ``F__gamma`` (dim
 ``F__predictor``) and ``F__effect`` (dims ``F``, ``F__term``), the group's
-offset from its population value in the data's units.
+offset from its population value. All of them are in the data's own units.
 
-Parameterisations of a factor's effects ``u`` (sds ``s``, Cholesky factor of
-the correlation ``L``):
+Internally the sampler sees predictors centred at their means, which removes
+the strong intercept-slope correlation of uncentred data. The change of
+variables is linear with unit Jacobian, so the posterior is exactly the one
+the spec states: the population intercept ``b[intercept]`` (value at x = 0)
+keeps the prior the spec gives it, imposed as a potential on the sampled
+centred intercept; a factor's effects at centred x are ``A u`` with ``A`` the
+unit upper-triangular map ``u_0 + sum_k u_k m_k``, whose covariance is
+``A S A'`` (Cholesky factor ``A L``).
 
-* non-centred: ``z ~ N(0, I)``, ``u = z (diag(s) L)'``;
+Parameterisations of a factor's effects (``L`` the Cholesky factor of their
+covariance):
+
+* non-centred: ``z ~ N(0, I)``, effects ``= z (A L)'``;
 * centred: the first centred factor in parents-first order carries the
-  population values: its group coefficients ``c_j ~ N(b_T + W_j gamma,
-  diag(s) L L' diag(s))`` replace ``b_T + u_j`` in every row's linear predictor
-  (hierarchical centring, Gelfand, Sahu and Carlin 1995); any further centred
-  factor samples its offsets ``u_j ~ N(0, ...)`` directly.
+  population values: its group coefficients ``c_j ~ N(A (b_T + W_j gamma), A S A')``
+  replace ``b_T + u_j`` in every row (hierarchical centring, Gelfand, Sahu and
+  Carlin 1995, Biometrika 82, 479-488); any further centred factor samples its
+  offsets directly, ``u_j ~ N(0, A S A')``.
+
+``build_model(plan, centre=False)`` gives the same model without centring,
+which prior predictive simulation uses (every variable then has a proper
+generative prior).
 """
 from __future__ import annotations
 
@@ -40,7 +53,7 @@ _DIST = {
 
 def coords_of(plan: ModelPlan) -> dict:
     """Named dimensions of the model: population terms and, per factor, groups and terms."""
-    coords = {"term": list(plan.terms)}
+    coords = {"term": list(plan.terms), "slope": list(plan.terms[1:])}
     for f in plan.factors:
         coords[f.name] = list(f.levels)
         coords[f"{f.name}__term"] = list(f.varying)
@@ -51,47 +64,68 @@ def coords_of(plan: ModelPlan) -> dict:
     return coords
 
 
-def prior_rv(name: str, priors: list, dims=None):
-    """One random variable with a (possibly per-element) prior.
-
-    All elements must share a distribution family; their parameters may differ.
-    """
+def _params(name: str, priors: list, vector: bool) -> tuple:
     dists = {p.dist for p in priors}
     if len(dists) != 1:
         raise SpecError(f"the priors of {name!r} mix distributions ({', '.join(sorted(dists))})",
                         hint="give every element the same distribution family (parameters may differ)")
-    dist = priors[0].dist
     params = {k: np.array([p.params[k] for p in priors]) for k in priors[0].params}
-    if dims is None:
+    if not vector:
         params = {k: float(v[0]) for k, v in params.items()}
-    return _DIST[dist](name, **params, dims=dims)
+    return _DIST[priors[0].dist], params
 
 
-def population_block(plan: ModelPlan):
-    """Population coefficients ``b`` and family parameters; returns (b, family extras)."""
-    b = prior_rv("b", [plan.priors[t] for t in plan.terms], dims="term")
+def prior_rv(name: str, priors: list, dims=None):
+    """One random variable with a (possibly per-element) prior of one distribution family."""
+    dist, params = _params(name, priors, dims is not None)
+    return dist(name, **params, dims=dims)
+
+
+def population_block(plan: ModelPlan, centre: bool):
+    """Population coefficients ``b`` (data units) and the family's extra parameters.
+
+    Returns ``(b, centred intercept, means)``: with ``centre`` the sampled
+    intercept is the linear predictor at the predictors' means, ``a``, and
+    ``b[intercept] = a - sum_k b_k m_k``; ``means`` are the ``m_k`` (0 without centring).
+    """
+    terms = plan.terms
+    means = plan.X[:, 1:].mean(axis=0) if centre else np.zeros(len(terms) - 1)
+    slopes = prior_rv("b_slope", [plan.priors[t] for t in terms[1:]], dims="slope") if len(terms) > 1 \
+        else pt.zeros(0)
+    if centre:
+        dist, params = _params("intercept", [plan.priors["intercept"]], False)
+        start = params.get("mu", 0.0) + float(np.dot(means, [plan.priors[t].params.get("mu", 0.0)
+                                                              for t in terms[1:]]))
+        a = pm.Flat("b_centred_intercept", initval=start)
+        intercept = a - pt.dot(slopes, means)
+        pm.Potential("intercept_prior", pm.logp(dist.dist(**params), intercept))
+    else:
+        intercept = prior_rv("b_intercept", [plan.priors["intercept"]])
+        a = intercept
+    b = pm.Deterministic("b", pt.concatenate([pt.stack([intercept]), slopes]), dims="term")
+    return b, a, means
+
+
+def family_extras(plan: ModelPlan) -> dict:
+    """Residual SD, Student-t degrees of freedom, negative-binomial dispersion, as the family needs."""
     extras = {}
     for name in ("residual_sd", "nu", "dispersion"):
         if name in plan.priors and not (name == "residual_sd" and plan.known_sd is not None):
             extras[name] = prior_rv(name, [plan.priors[name]])
-    return b, extras
+    return extras
 
 
 def factor_scales(f: FactorPlan, plan: ModelPlan):
-    """SDs and Cholesky factor of a factor's group effects: returns (sd, chol of covariance)."""
+    """SDs and Cholesky factor of a factor's group-effect covariance: returns (sd, chol)."""
     sd_priors = [plan.priors[f"{f.name}.sd"]] + [plan.priors[f"{f.name}.{t}.sd"] for t in f.varying[1:]]
     q = len(f.varying)
     if q == 1:
         sd = prior_rv(f"{f.name}__sd", sd_priors, dims=f"{f.name}__term")
         return sd, pt.reshape(sd, (1, 1))
-    dists = {p.dist for p in sd_priors}
-    if len(dists) != 1:
-        raise SpecError(f"the SD priors of factor {f.name!r} mix distributions ({', '.join(sorted(dists))})",
-                        hint="with correlated varying terms give every SD the same distribution family")
-    params = {k: np.array([p.params[k] for p in sd_priors]) for k in sd_priors[0].params}
-    sd_dist = _DIST[sd_priors[0].dist].dist(**params, shape=q)
+    dist, params = _params(f"{f.name} SDs", sd_priors, True)
     chol, corr, sd = pm.LKJCholeskyCov(f"{f.name}__chol", n=q, eta=plan.priors[f"{f.name}.corr"].params["eta"],
-                                       sd_dist=sd_dist, compute_corr=True, store_in_trace=False)
+                                       sd_dist=dist.dist(**params, shape=q), compute_corr=True,
+                                       store_in_trace=False)
     pm.Deterministic(f"{f.name}__sd", sd, dims=f"{f.name}__term")
     pm.Deterministic(f"{f.name}__corr", corr, dims=(f"{f.name}__term", f"{f.name}__term_"))
     return sd, chol
@@ -106,50 +140,63 @@ def group_predictor_term(f: FactorPlan, plan: ModelPlan):
     return pt.dot(pt.as_tensor_variable(f.W), gamma)
 
 
-def build_model(plan: ModelPlan) -> pm.Model:
+def shift_matrix(f: FactorPlan, means: np.ndarray) -> np.ndarray:
+    """``A``: effects at x = 0 -> effects at the centred x (unit upper-triangular)."""
+    A = np.eye(len(f.varying))
+    A[0, 1:] = [means[c - 1] for c in f.varying_cols[1:]]
+    return A
+
+
+def build_model(plan: ModelPlan, centre: bool = True) -> pm.Model:
     """Build the per-row PyMC model of a plan.
 
     Parameters
     ----------
     plan : ModelPlan
+    centre : bool
+        Sample with predictors centred (exact change of variables; default).
 
     Returns
     -------
     pymc.Model
     """
-    X = plan.X
     with pm.Model(coords=coords_of(plan)) as model:
-        b, extras = population_block(plan)
-        anchored: set = set()  # population columns carried by a centred factor's coefficients
+        b, a, means = population_block(plan, centre)
+        Xc = plan.X - np.concatenate([[0.0], means])
+        coef_c = pt.concatenate([pt.stack([a]), b[1:]])  # population coefficients on the centred columns
+        extras = family_extras(plan)
+        anchored: set = set()
         eta_parts = []
         for f in plan.factors:
             sd, chol = factor_scales(f, plan)
             shift = group_predictor_term(f, plan)
-            Z = X[:, list(f.varying_cols)]
+            A = shift_matrix(f, means)
+            A_inv = np.linalg.inv(A)
+            chol_c = pt.dot(A, chol)
+            Z = Xc[:, list(f.varying_cols)]
             dims = (f.name, f"{f.name}__term")
             shape = (f.n_groups, len(f.varying))
             if f.parameterisation == "centred" and not anchored:
-                mean = pt.broadcast_to(b[list(f.varying_cols)], shape)
+                mean = pt.broadcast_to(coef_c[list(f.varying_cols)], shape)
                 if shift is not None:
                     mean = pt.set_subtensor(mean[:, 0], mean[:, 0] + shift)
-                coef = _centred(f"{f.name}__coef", mean, sd, chol, dims)
-                effect = coef - mean
+                coef = _centred(f"{f.name}__coef", mean, sd, chol_c, dims)
+                effect_c = coef - mean
                 eta_parts.append((coef[f.index] * Z).sum(axis=1))
                 anchored.update(f.varying_cols)
             else:
                 if f.parameterisation == "centred":
-                    effect = _centred(f"{f.name}__u", pt.zeros(shape), sd, chol, dims)
+                    effect_c = _centred(f"{f.name}__u", pt.zeros(shape), sd, chol_c, dims)
                 else:
                     z = pm.Normal(f"{f.name}__z", 0.0, 1.0, dims=dims)
-                    effect = pt.dot(z, chol.T) if len(f.varying) > 1 else z * sd
-                eta_parts.append((effect[f.index] * Z).sum(axis=1))
+                    effect_c = pt.dot(z, chol_c.T)
+                eta_parts.append((effect_c[f.index] * Z).sum(axis=1))
                 if shift is not None:
                     eta_parts.append(shift[f.index])
-            pm.Deterministic(f"{f.name}__effect", effect, dims=dims)
-        free_cols = [k for k in range(X.shape[1]) if k not in anchored]
-        eta = pt.dot(X[:, free_cols], b[free_cols]) if free_cols else 0.0
-        eta = eta + sum(eta_parts)
-        likelihood(plan, eta, extras)
+            pm.Deterministic(f"{f.name}__effect", pt.dot(effect_c, A_inv.T), dims=dims)
+        free = [k for k in range(plan.X.shape[1]) if k not in anchored]
+        eta = pt.dot(Xc[:, free], coef_c[free]) if free else pt.zeros(plan.n)
+        likelihood(plan, eta + sum(eta_parts), extras)
     return model
 
 
@@ -160,7 +207,7 @@ def _centred(name, mean, sd, chol, dims):
 
 
 def likelihood(plan: ModelPlan, eta, extras) -> None:
-    """Add the observed outcome given the linear predictor ``eta`` (per row)."""
+    """Add the observed outcome ``y`` given the linear predictor ``eta`` (per row)."""
     y, fam = plan.y, plan.family
     if plan.exposure is not None:
         eta = eta + np.log(plan.exposure)
