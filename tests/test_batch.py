@@ -13,7 +13,7 @@ from batchkit import (assert_run_folders_sound, batch_state, chain_processes, fi
 
 
 @pytest.mark.slow
-def test_batch_killed_during_second_job_resumes_without_rerunning_the_first(tmp_path):
+def test_batch_killed_during_second_job_resumes_without_rerunning_the_first(tmp_path, capsys):
     specs = tmp_path / "specs"
     specs.mkdir()
     for i, name in enumerate(("a_first", "b_second", "c_third")):
@@ -26,6 +26,9 @@ def test_batch_killed_during_second_job_resumes_without_rerunning_the_first(tmp_
         fit = wait_for(lambda: fit_process(guard), what="its fit process")
         # cores=2 (from --workers 1 on 2 cores): chain processes appear when sampling starts
         chains = wait_for(lambda: chain_processes(fit), what="its chain processes")
+        code, stdout, _ = in_process(capsys, "status", out)  # as from another terminal
+        assert code == 0 and f"running (pid {batch.pid})" in stdout
+        assert re.search(r"^  b_second attempt 1, \d+s", stdout, re.M)
         os.kill(batch.pid, signal.SIGKILL)
         batch.wait()
         # the fit dies with the batch (parent-death signal), so it cannot finish into the folder later
@@ -50,7 +53,7 @@ def test_batch_killed_during_second_job_resumes_without_rerunning_the_first(tmp_
 
     # an edited spec is rerun, unchanged ones are skipped
     spec = specs / "c_third.yaml"
-    spec.write_text(spec.read_text().replace("draws: 1000", "draws: 900"))
+    spec.write_text(spec.read_text() + "title: Output of line C, edited\n")
     again = hierwork("batch", specs, "--out", out, "--resume")
     assert again.returncode == 0, again.stdout + again.stderr
     assert "c_third: attempt 1 started" in again.stdout

@@ -8,6 +8,7 @@ import sys
 import pytest
 
 from hierwork.batch import child, summary
+from hierwork.batch.progress import duration, eta_seconds
 from hierwork.batch.jobs import load_jobs
 from hierwork.batch.queue import Queue
 from hierwork.batch.remedies import DEFAULT_POLICY, Policy, Step, next_remedy, parse_policy
@@ -293,3 +294,16 @@ def test_spec_names_file_line_and_key_of_a_bad_remedies_value(tmp_path):
     with pytest.raises(SpecError, match=re.escape(
             f"{path}:6: remedies.max_attempts: max_attempts must be a whole number of at least 1, got 0")):
         load_spec(path)
+
+
+# ---------------------------------------------------------------- progress
+def test_eta_spreads_the_mean_job_time_over_the_workers():
+    jobs = [{"status": "passed", "started": 0.0, "finished": 10.0},
+            {"status": "failed", "started": 0.0, "finished": 20.0},
+            {"status": "pending", "started": None, "finished": None},
+            {"status": "interrupted", "started": 50.0, "finished": None},
+            {"status": "running", "started": 95.0, "finished": None}]
+    # mean 15 s; two queued jobs 15 s each, the running one 15 - 5 = 10 s left; over 2 workers
+    assert eta_seconds(jobs, slots=2, now=100.0) == (15 + 15 + 10) / 2
+    assert eta_seconds(jobs[2:], slots=2, now=100.0) is None
+    assert [duration(s) for s in (42, 425, 11520)] == ["42s", "7m05s", "3h12m"]

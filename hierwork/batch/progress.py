@@ -49,15 +49,15 @@ def eta_seconds(jobs: list[dict], slots: int, now: float | None = None) -> float
 
     None until one job has finished (common practice: no estimate without data).
     """
-    now = now or time.time()
+    now = time.time() if now is None else now
     took = [j["finished"] - j["started"] for j in jobs
-            if j["status"] in FINAL and j["started"] and j["finished"]]
+            if j["status"] in FINAL and j["started"] is not None and j["finished"] is not None]
     if not took:
         return None
     mean = sum(took) / len(took)
     left = sum(mean for j in jobs if j["status"] in ("pending", "interrupted"))
     left += sum(max(0.0, mean - (now - j["started"])) for j in jobs
-                if j["status"] == "running" and j["started"])
+                if j["status"] == "running" and j["started"] is not None)
     return left / max(1, slots)
 
 
