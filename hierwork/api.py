@@ -10,6 +10,7 @@ from dataclasses import dataclass
 from importlib import metadata
 from pathlib import Path
 
+import numpy as np
 import yaml
 
 from . import __version__, runs
@@ -18,8 +19,11 @@ from .data import load_dataset
 from .describe import describe, plan_as_dict
 from .diagnostics import evaluate_gate
 from .estimates import group_estimates, pooling_factors, population_summary
+from .errors import SpecError
+from .gaussian import add_group_effects, build_collapsed_model, choose_path, collapsed_problem
 from .model import build_model
 from .plan import ModelPlan, make_plan
+from .report import write_report
 from .sampling import choose_engine, run_sampler
 from .spec import Spec, load_spec
 
@@ -31,14 +35,18 @@ class CheckReport:
     """What ``check`` found: the plan, and the choices made for fitting."""
 
     plan: ModelPlan
+    path: str
+    path_reason: str
     engine: str
     engine_reason: str
 
     def text(self) -> str:
-        return describe(self.plan, {"engine": f"{self.engine} ({self.engine_reason})"})
+        return describe(self.plan, {"path": f"{self.path} ({self.path_reason})",
+                                    "engine": f"{self.engine} ({self.engine_reason})"})
 
     def to_dict(self) -> dict:
-        return plan_as_dict(self.plan, {"engine": self.engine, "engine_reason": self.engine_reason})
+        return plan_as_dict(self.plan, {"path": self.path, "path_reason": self.path_reason,
+                                        "engine": self.engine, "engine_reason": self.engine_reason})
 
 
 def _as_spec(spec, overrides) -> Spec:
@@ -67,8 +75,31 @@ def check(spec, overrides: dict | None = None) -> CheckReport:
     """
     spec = _as_spec(spec, overrides)
     plan = make_plan(spec, load_dataset(spec))
-    engine, reason = choose_engine(spec.sampling["engine"], plan.n * plan.X.shape[1])
-    return CheckReport(plan, engine, reason)
+    path, path_reason = _resolve_path(spec, plan)
+    engine, reason = choose_engine(spec.sampling["engine"], _likelihood_size(plan, path) * plan.X.shape[1])
+    return CheckReport(plan, path, path_reason, engine, reason)
+
+
+def _likelihood_size(plan: ModelPlan, path: str) -> int:
+    """Terms the likelihood sums per gradient: rows, cells of crossed groups, or groups."""
+    if path == "plain" or not plan.factors:
+        return plan.n
+    if path == "reduced":
+        return len(np.unique(np.column_stack([f.index for f in plan.factors]), axis=0))
+    return max(f.n_groups for f in plan.factors)
+
+
+def _resolve_path(spec: Spec, plan: ModelPlan) -> tuple[str, str]:
+    """The model form: the spec's ``sampling.path``, or the fastest exact one that applies."""
+    best, reason = choose_path(plan)
+    requested = spec.sampling["path"]
+    if requested in ("auto", best):
+        return best, reason
+    order = ("collapsed", "reduced", "plain")
+    if order.index(requested) < order.index(best):
+        raise SpecError(f"path {requested!r} does not apply to this model: {reason}",
+                        where=spec.where("sampling.path"), hint=f"use 'auto' or {best!r}")
+    return requested, "set in the spec"
 
 
 def fit(spec, out, force: bool = False, overrides: dict | None = None, progress: bool | None = None,
@@ -102,8 +133,13 @@ def fit(spec, out, force: bool = False, overrides: dict | None = None, progress:
     report = check(spec)
     plan = report.plan
     settings = spec.sampling
-    model = build_model(plan)
-    idata = run_sampler(model, settings, report.engine, progress)
+    if report.path == "collapsed":
+        problem = collapsed_problem(plan)
+        idata = run_sampler(build_collapsed_model(plan, problem), settings, report.engine, progress)
+        add_group_effects(idata, plan, settings["seed"], problem)
+    else:
+        idata = run_sampler(build_model(plan, reduced=report.path == "reduced"), settings, report.engine,
+                            progress)
     gate = evaluate_gate(idata, spec.gate, settings["max_treedepth"])
     table = group_estimates(idata, plan, baselines(plan), spec.interval)
     summary = population_summary(idata, plan, spec.interval)
@@ -114,6 +150,7 @@ def fit(spec, out, force: bool = False, overrides: dict | None = None, progress:
         "packages": {p: _version(p) for p in _PACKAGES}, "spec_path": str(spec.path), "spec_sha256": spec.sha256,
         "data_path": str(spec.data_path), "data_sha256": plan.data_sha256, "seed": settings["seed"],
         "overrides": dict(overrides or {}), "engine": report.engine, "engine_reason": report.engine_reason,
+        "path": report.path, "path_reason": report.path_reason,
         "started": started.isoformat(timespec="seconds"), "finished": finished.isoformat(timespec="seconds"),
         "wall_seconds": round(time.perf_counter() - t0, 3),
         "sampling_seconds": round(float(idata.sample_stats.attrs.get("sampling_seconds", 0.0)), 3),
@@ -130,6 +167,7 @@ def fit(spec, out, force: bool = False, overrides: dict | None = None, progress:
         (tmp / "spec.yaml").write_text(_spec_as_run(spec), encoding="utf-8")
         runs.write_json(tmp / "provenance.json", provenance)
         runs.write_json(tmp / "plan.json", report.to_dict())
+        write_report(tmp)
     return runs.Run.load(out)
 
 

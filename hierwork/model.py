@@ -147,14 +147,17 @@ def shift_matrix(f: FactorPlan, means: np.ndarray) -> np.ndarray:
     return A
 
 
-def build_model(plan: ModelPlan, centre: bool = True) -> pm.Model:
-    """Build the per-row PyMC model of a plan.
+def build_model(plan: ModelPlan, centre: bool = True, reduced: bool = False) -> pm.Model:
+    """Build the PyMC model of a plan with every group effect sampled.
 
     Parameters
     ----------
     plan : ModelPlan
     centre : bool
         Sample with predictors centred (exact change of variables; default).
+    reduced : bool
+        Normal outcomes only: evaluate the likelihood from per-cell sufficient
+        statistics (exact, O(cells) per gradient) instead of per row.
 
     Returns
     -------
@@ -162,18 +165,16 @@ def build_model(plan: ModelPlan, centre: bool = True) -> pm.Model:
     """
     with pm.Model(coords=coords_of(plan)) as model:
         b, a, means = population_block(plan, centre)
-        Xc = plan.X - np.concatenate([[0.0], means])
         coef_c = pt.concatenate([pt.stack([a]), b[1:]])  # population coefficients on the centred columns
         extras = family_extras(plan)
         anchored: set = set()
-        eta_parts = []
+        parts = []  # (factor, per-group values in data units multiplying its varying columns, shift)
         for f in plan.factors:
             sd, chol = factor_scales(f, plan)
             shift = group_predictor_term(f, plan)
             A = shift_matrix(f, means)
-            A_inv = np.linalg.inv(A)
+            to_data = np.linalg.inv(A).T  # row vectors at centred x -> at x = 0
             chol_c = pt.dot(A, chol)
-            Z = Xc[:, list(f.varying_cols)]
             dims = (f.name, f"{f.name}__term")
             shape = (f.n_groups, len(f.varying))
             if f.parameterisation == "centred" and not anchored:
@@ -182,21 +183,27 @@ def build_model(plan: ModelPlan, centre: bool = True) -> pm.Model:
                     mean = pt.set_subtensor(mean[:, 0], mean[:, 0] + shift)
                 coef = _centred(f"{f.name}__coef", mean, sd, chol_c, dims)
                 effect_c = coef - mean
-                eta_parts.append((coef[f.index] * Z).sum(axis=1))
+                parts.append((f, pt.dot(coef, to_data), None))
                 anchored.update(f.varying_cols)
             else:
                 if f.parameterisation == "centred":
                     effect_c = _centred(f"{f.name}__u", pt.zeros(shape), sd, chol_c, dims)
                 else:
-                    z = pm.Normal(f"{f.name}__z", 0.0, 1.0, dims=dims)
-                    effect_c = pt.dot(z, chol_c.T)
-                eta_parts.append((effect_c[f.index] * Z).sum(axis=1))
-                if shift is not None:
-                    eta_parts.append(shift[f.index])
-            pm.Deterministic(f"{f.name}__effect", pt.dot(effect_c, A_inv.T), dims=dims)
+                    effect_c = pt.dot(pm.Normal(f"{f.name}__z", 0.0, 1.0, dims=dims), chol_c.T)
+                parts.append((f, pt.dot(effect_c, to_data), shift))
+            pm.Deterministic(f"{f.name}__effect", pt.dot(effect_c, to_data), dims=dims)
         free = [k for k in range(plan.X.shape[1]) if k not in anchored]
-        eta = pt.dot(Xc[:, free], coef_c[free]) if free else pt.zeros(plan.n)
-        likelihood(plan, eta + sum(eta_parts), extras)
+        if reduced:
+            from .gaussian import reduced_normal_likelihood
+
+            reduced_normal_likelihood(plan, b, free, parts, extras.get("residual_sd"))
+        else:
+            eta = pt.dot(plan.X[:, free], b[free]) if free else pt.zeros(plan.n)
+            for f, values, shift in parts:
+                eta = eta + (values[f.index] * plan.X[:, list(f.varying_cols)]).sum(axis=1)
+                if shift is not None:
+                    eta = eta + shift[f.index]
+            likelihood(plan, eta, extras)
     return model
 
 

@@ -8,7 +8,11 @@ SDs). The data are informative about group ``j`` when ``kappa_j = tau^2 / v_j``
 exceeds 1 (the likelihood is sharper than the population distribution). If the
 median ``kappa_j`` is at least 1 the factor is sampled **centred**, otherwise
 **non-centred**; when no between-group variation is detectable (``tau`` = 0 by
-the method of moments) the factor is non-centred.
+the method of moments) the factor is non-centred. A varying slope of ``x`` is
+judged the same way, with each group's own least-squares slope, its sampling
+variance ``sigma^2 / S_xx,j`` (``S_xx,j`` the within-group sum of squares of
+``x``; 0 makes the group uninformative) and the moments estimate of the slopes'
+SD; the factor is centred only if every varying term is data-rich.
 
 Why: the centred form mixes well when each group is pinned down by its own data
 and poorly (a funnel) when the population distribution dominates; the
@@ -66,13 +70,37 @@ def informativeness(z, var, index, n_groups):
     return tau2, tau2 / v
 
 
-def choose(requested: str, kappa, tau2) -> tuple[str, str]:
-    """Apply the rule; returns (parameterisation, reason)."""
+def slope_informativeness(z, x, index, n_groups):
+    """Moments ``tau^2`` of per-group slopes of ``z`` on ``x`` and per-group ``kappa_j``."""
+    counts = np.bincount(index, minlength=n_groups).astype(float)
+    xm = np.bincount(index, x, n_groups) / counts
+    zm = np.bincount(index, z, n_groups) / counts
+    dx, dz = x - xm[index], z - zm[index]
+    sxx = np.bincount(index, dx * dx, n_groups)
+    sxy = np.bincount(index, dx * dz, n_groups)
+    ok = sxx > 1e-12 * max(float(sxx.max()), 1e-300)
+    dof = len(z) - 2 * int(ok.sum()) - int((~ok).sum())
+    slopes = np.where(ok, sxy / np.where(ok, sxx, 1.0), 0.0)
+    resid = dz - slopes[index] * dx
+    sigma2 = float(resid @ resid / dof) if dof > 0 else float(np.var(z))
+    if ok.sum() < 2:
+        return 0.0, np.zeros(n_groups)
+    v = sigma2 / sxx[ok]
+    tau2 = max(float(np.var(slopes[ok], ddof=1)) - float(np.mean(v)), 0.0)
+    kappa = np.zeros(n_groups)
+    kappa[ok] = tau2 / v
+    return tau2, kappa
+
+
+def choose(requested: str, judged: list) -> tuple[str, str]:
+    """Apply the rule to ``[(term, tau2, kappa), ...]``; returns (parameterisation, reason)."""
     if requested != "auto":
         return requested, "set in the spec"
-    if tau2 <= 0:
-        return "non_centred", "no between-group variation detectable by moments: non-centred"
-    med = float(np.median(kappa))
+    for term, tau2, _ in judged:
+        if tau2 <= 0:
+            return "non_centred", f"no between-group variation in {term} detectable by moments: non-centred"
+    medians = [(float(np.median(kappa)), term) for term, _, kappa in judged]
+    med, term = min(medians)
     if med >= 1:
-        return "centred", f"median tau^2/v_j = {med:.3g} >= 1 (data-rich groups): centred"
-    return "non_centred", f"median tau^2/v_j = {med:.3g} < 1 (data-poor groups): non-centred"
+        return "centred", f"median tau^2/v_j = {med:.3g} >= 1 for {term} (data-rich groups): centred"
+    return "non_centred", f"median tau^2/v_j = {med:.3g} < 1 for {term} (data-poor groups): non-centred"

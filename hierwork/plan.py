@@ -142,8 +142,11 @@ def make_plan(spec: Spec, dataset: Dataset) -> ModelPlan:
         if f.within is not None:
             parent = next(p for p in factor_plans if p.name == f.within)
             parent_index = pd.Series(parent.index).groupby(codes).first().to_numpy().astype(np.int64)
-        tau2, kappa = parameterisation.informativeness(z, var, codes, len(uniques))
-        form, reason = parameterisation.choose(f.parameterisation, kappa, tau2)
+        judged = [("intercept", *parameterisation.informativeness(z, var, codes, len(uniques)))]
+        for term in f.varying[1:]:
+            x = X[:, terms.index(term)]
+            judged.append((term, *parameterisation.slope_informativeness(z, x, codes, len(uniques))))
+        form, reason = parameterisation.choose(f.parameterisation, judged)
         factor_plans.append(FactorPlan(
             name=f.name, column=f.column, levels=tuple(str(u) for u in uniques), index=codes, sizes=sizes,
             varying=f.varying, varying_cols=tuple(terms.index(t) for t in f.varying),

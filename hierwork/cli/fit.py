@@ -37,4 +37,6 @@ def run(args) -> int:
 
 def _fmt(value: float) -> str:
     """Enough digits to see a value against its threshold (R-hat 1.0104 is not 1.01)."""
-    return f"{value:.0f}" if abs(value) >= 10 else f"{value:.4f}"
+    if float(value).is_integer() or abs(value) >= 10:
+        return f"{value:.0f}"
+    return f"{value:.4f}"
