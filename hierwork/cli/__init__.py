@@ -63,6 +63,10 @@ def main(argv=None) -> int:
     except HierworkError as exc:
         print(f"hierwork: error: {exc}", file=sys.stderr)
         return EXIT_INPUT
+    except BrokenPipeError:
+        # Output piped into a program that stopped reading (e.g. `| head`): not an error.
+        sys.stderr.close()
+        return EXIT_OK
     except KeyboardInterrupt:
         print("hierwork: interrupted; no run folder was written", file=sys.stderr)
         return 130
