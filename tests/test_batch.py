@@ -60,6 +60,7 @@ def test_batch_killed_during_second_job_resumes_without_rerunning_the_first(tmp_
     assert "b_second: finished before and unchanged; skipped" in again.stdout
 
 
+@pytest.mark.slow
 def test_centred_funnel_is_rescued_by_the_remedies_and_attempts_are_kept(tmp_path):
     # Few rows per line and a small spread between lines: the centred form's funnel
     # gives divergences (Betancourt and Girolami 2015); raising target_accept alone
