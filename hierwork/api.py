@@ -42,7 +42,8 @@ class CheckReport:
 
     def text(self) -> str:
         return describe(self.plan, {"path": f"{self.path} ({self.path_reason})",
-                                    "engine": f"{self.engine} ({self.engine_reason})"})
+                                    "engine": f"{self.engine} ({self.engine_reason})"},
+                        collapsed=self.path == "collapsed")
 
     def to_dict(self) -> dict:
         return plan_as_dict(self.plan, {"path": self.path, "path_reason": self.path_reason,

@@ -217,7 +217,10 @@ def _check_predictors(spec: Spec, frame, line_of, path) -> dict:
                 raise SpecError("'reference' applies to categorical predictors only",
                                 where=spec.where(f"predictors[{i}].reference"),
                                 hint="remove it, or set type: categorical")
-            _numeric(frame, p.column, line_of, path, "predictor")
+            values = _numeric(frame, p.column, line_of, path, "predictor")
+            if np.ptp(values) == 0:
+                raise DataError(f"predictor {p.column!r} has the same value ({values[0]:g}) in every row",
+                                where=str(path), hint="a predictor that never changes cannot be estimated; remove it")
             continue
         labels = values.astype(str).str.strip()
         frame[p.column] = labels

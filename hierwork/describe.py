@@ -26,8 +26,12 @@ def plan_as_dict(plan: ModelPlan, extra: dict | None = None) -> dict:
     }
 
 
-def describe(plan: ModelPlan, extra: dict | None = None) -> str:
-    """Human-readable plan: rows, factors and group sizes, terms, priors, parameterisation."""
+def describe(plan: ModelPlan, extra: dict | None = None, collapsed: bool = False) -> str:
+    """Human-readable plan: rows, factors and group sizes, terms, priors, parameterisation.
+
+    With ``collapsed`` the group effects are integrated out, so the
+    parameterisation is shown as what it would be, not what is used.
+    """
     spec = plan.spec
     lines = [f"spec      {spec.path}", f"model     {spec.title} ({spec.name})",
              f"data      {spec.data_path}  ({plan.n:,} rows used)",
@@ -40,7 +44,11 @@ def describe(plan: ModelPlan, extra: dict | None = None) -> str:
                      f"min {s.min()}, median {np.median(s):g}, max {s.max()}; singletons {(s == 1).sum()}")
         lines.append(f"    varying: {', '.join(f.varying)}"
                      + (f"; group-level predictors: {', '.join(f.predictors)}" if f.predictors else ""))
-        lines.append(f"    sampled {f.parameterisation.replace('_', '-')}: {f.reason}")
+        form = f.parameterisation.replace("_", "-")
+        if collapsed:
+            lines.append(f"    integrated out exactly (collapsed path); if sampled it would be {form}: {f.reason}")
+        else:
+            lines.append(f"    sampled {form}: {f.reason}")
     lines += ["", "priors (* = default, scaled to the data; see README)"]
     width = max(len(k) for k in plan.priors)
     for key, prior in plan.priors.items():
