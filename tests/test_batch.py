@@ -81,7 +81,7 @@ def test_centred_funnel_is_rescued_by_the_remedies_and_attempts_are_kept(tmp_pat
     status = hierwork("status", out)
     assert status.returncode == 0
     assert re.search(r"^funnel\s+passed\s+3\s", status.stdout, re.M)
-    assert "1 jobs: 1 passed" in status.stdout and "not running" in status.stdout
+    assert "1 job: 1 passed" in status.stdout and "not running" in status.stdout
 
 
 def test_bad_data_fails_its_job_with_its_message_and_the_others_finish(tmp_path):

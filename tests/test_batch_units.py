@@ -260,7 +260,7 @@ def test_summary_escapes_user_strings_and_lists_attempts(tmp_path):
     q.start_attempt("a<b>", 2, {}, "target_accept: 0.95", 1, "jobs/a<b>/attempt-2")
     q.finish_attempt("a<b>", 2, "passed", 0, None, {"passed": True, "checks": [
         check("r_hat", 1.003, 1.01, "<=", True), check("ess_bulk", 812.0, 400, ">=", True),
-        check("ess_tail", 640.0, 400, ">=", True), check("divergences", 0, 0, "<=", True)]})
+        check("ess_tail", 640.0, 400, ">=", True), check("divergences", 0.0, 0, "<=", True)]})
     q.finish_job("a<b>", "passed", None, 2, 0)
     report = tmp_path / "jobs" / "a<b>" / "attempt-2" / "report.html"
     report.parent.mkdir(parents=True)

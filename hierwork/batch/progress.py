@@ -44,12 +44,19 @@ def counts(jobs: list[dict]) -> dict:
     return {status: found[status] for status in ORDER if status in found}
 
 
+def jobs_text(n: int) -> str:
+    """``1 job``, ``3 jobs``."""
+    return f"{n} job" if n == 1 else f"{n} jobs"
+
+
 def eta_seconds(jobs: list[dict], slots: int, now: float | None = None) -> float | None:
     """Estimated seconds left: mean duration of finished jobs, spread over ``slots``.
 
-    None until one job has finished (common practice: no estimate without data).
+    None until one job has finished (no estimate without data) and once nothing is left.
     """
     now = time.time() if now is None else now
+    if not any(j["status"] in ("pending", "interrupted", "running") for j in jobs):
+        return None
     took = [j["finished"] - j["started"] for j in jobs
             if j["status"] in FINAL and j["started"] is not None and j["finished"] is not None]
     if not took:
@@ -66,7 +73,7 @@ def status_lines(queue: Queue, width: int = 100) -> list[str]:
     jobs = queue.jobs()
     tally = ", ".join(f"{n} {status}" for status, n in counts(jobs).items()) or "no jobs"
     eta = eta_seconds(jobs, queue.meta("slots", 1))
-    lines = [f"{len(jobs)} jobs: {tally}" + (f"; about {duration(eta)} left" if eta is not None else "")]
+    lines = [f"{jobs_text(len(jobs))}: {tally}" + (f"; about {duration(eta)} left" if eta is not None else "")]
     now = time.time()
     for attempt in queue.running():
         where = f" on {attempt['worker']}" if attempt["worker"] not in (None, "local") else ""

@@ -16,7 +16,7 @@ from datetime import datetime
 from pathlib import Path
 from urllib.parse import quote
 
-from hierwork.batch.progress import counts, duration
+from hierwork.batch.progress import counts, duration, jobs_text
 from hierwork.batch.queue import Queue
 
 CAUTION = ("Model-based estimates, to be reviewed by a qualified analyst before decisions "
@@ -73,9 +73,11 @@ def _report(batch_dir: Path, attempt: dict | None) -> str | None:
     return path if (batch_dir / path).is_file() else None
 
 
-def _num(value) -> str:
+def _num(value, whole: bool = False) -> str:
     if value is None:
         return ""
+    if whole:
+        return f"{value:.0f}"
     return f"{value:.3f}" if isinstance(value, float) and abs(value) < 10 else f"{value:.0f}"
 
 
@@ -84,12 +86,12 @@ def render_markdown(batch_dir: Path, queue: Queue) -> str:
     data = rows(batch_dir, queue)
     tally = ", ".join(f"{n} {s}" for s, n in counts(queue.jobs()).items()) or "no jobs"
     out = [f"# Batch summary: {_md(batch_dir.name)}", "",
-           f"Written {datetime.now():%Y-%m-%d %H:%M}. {len(data)} jobs: {tally}.", "", f"*{CAUTION}*", "",
+           f"Written {datetime.now():%Y-%m-%d %H:%M}. {jobs_text(len(data))}: {tally}.", "", f"*{CAUTION}*", "",
            "| " + " | ".join(COLUMNS) + " |", "|" + "---|" * len(COLUMNS)]
     for r in data:
         link = f"[report]({quote(r['report'])})" if r["report"] else ""
         cells = [r["job"], r["verdict"], str(r["attempts"]), _num(r["max R-hat"]), _num(r["min ESS"]),
-                 _num(r["divergences"]), r["time"], link, r["note"]]
+                 _num(r["divergences"], whole=True), r["time"], link, r["note"]]
         out.append("| " + " | ".join(_md(c) if c != link else c for c in cells) + " |")
     retried = [r for r in data if r["attempts"] > 1]
     if retried:
@@ -114,7 +116,7 @@ def render_html(batch_dir: Path, queue: Queue) -> str:
     data = rows(batch_dir, queue)
     tally = ", ".join(f"{n} {s}" for s, n in counts(queue.jobs()).items()) or "no jobs"
     body = [f"<h1>Batch summary: {e(batch_dir.name)}</h1>",
-            f"<p>Written {datetime.now():%Y-%m-%d %H:%M}. {len(data)} jobs: {e(tally)}.</p>",
+            f"<p>Written {datetime.now():%Y-%m-%d %H:%M}. {jobs_text(len(data))}: {e(tally)}.</p>",
             f'<p class="caution">{e(CAUTION)}</p>',
             "<table><thead><tr>" + "".join(f"<th>{e(c)}</th>" for c in COLUMNS) + "</tr></thead><tbody>"]
     for r in data:
@@ -122,7 +124,8 @@ def render_html(batch_dir: Path, queue: Queue) -> str:
         cells = [f'<td title="{e(r["source"])}">{e(r["job"])}</td>',
                  f'<td class="{e(r["status"])}">{e(r["verdict"])}</td>',
                  f"<td>{r['attempts']}</td>",
-                 *(f'<td class="num">{_num(r[k])}</td>' for k in ("max R-hat", "min ESS", "divergences")),
+                 *(f'<td class="num">{_num(r[k], whole=k == "divergences")}</td>'
+                   for k in ("max R-hat", "min ESS", "divergences")),
                  f"<td>{e(r['time'])}</td>", f"<td>{link}</td>", f"<td>{e(r['note'])}</td>"]
         body.append("<tr>" + "".join(cells) + "</tr>")
     body.append("</tbody></table>")
