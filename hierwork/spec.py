@@ -128,6 +128,8 @@ SPEC_KEYS = {
     "estimates": Key("section", "How estimates are summarised.", {}, fields={
         "interval": Key("float", "Probability of the central interval reported (lower, upper).", 0.94,
                         low=0.5, high=1.0, open_high=True),
+        "compare_pooling": Key("bool", "Also fit complete and no pooling and compare all three by PSIS-LOO "
+                               "(loo_compare.csv; two more small fits).", False),
     }),
     # -- batch keys (owned by hierwork/batch, see docs/batch.md; 'fit' ignores them) --
     "variants": Key("batch", "Named variants ([{name, set: {dotted.key: value}}]) or a cartesian "
