@@ -171,6 +171,11 @@ def test_unreadable_spec_becomes_an_invalid_job_and_duplicates_are_refused(tmp_p
     (tmp_path / "broken.yaml").write_text("name: [unclosed\n")
     (job,) = load_jobs([tmp_path / "broken.yaml"])
     assert job.name == "broken" and job.error.startswith(f"{tmp_path / 'broken.yaml'}: cannot read the spec:")
+    (tmp_path / "escape.yaml").write_text("name: ../../outside\nvariants: 3\n")
+    (escape,) = load_jobs([tmp_path / "escape.yaml"])
+    assert escape.name == "escape"  # a name that is no slug never becomes a path
+    assert escape.error == (f"{tmp_path / 'escape.yaml'}: variants: variants must be a list of "
+                            "{name, set} or {sweep: ...}, got 3 (see docs/batch.md, 'Variants')")
     write_spec(tmp_path, "crop")
     (tmp_path / "other").mkdir()
     write_spec(tmp_path / "other", "crop")

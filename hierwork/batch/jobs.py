@@ -11,13 +11,14 @@ from __future__ import annotations
 
 import hashlib
 import json
+import re
 from dataclasses import dataclass, field
 from pathlib import Path
 
 import yaml
 
 from hierwork.batch.remedies import DEFAULT_POLICY, Policy, parse_policy
-from hierwork.batch.variants import expand_variants, parse_variants
+from hierwork.batch.variants import SLUG, expand_variants, parse_variants
 from hierwork.errors import HierworkError
 
 SPEC_SUFFIXES = (".yaml", ".yml")
@@ -111,8 +112,13 @@ def load_jobs(paths) -> list[JobDef]:
 
 def _jobs_of(path: Path) -> list[JobDef]:
     jobs = _read_jobs(path)
-    if jobs[0].error:  # hash the file, so a resumed batch retries it once it is edited
-        jobs = [JobDef(name=jobs[0].name, source=str(path), error=jobs[0].error, job_sha=file_sha256(path))]
+    if jobs[0].error:  # hash the message and file, so a resumed batch retries it once it is edited
+        try:
+            content = file_sha256(path)
+        except OSError:
+            content = ""
+        job_sha = hashlib.sha256(f"{jobs[0].error}\n{content}".encode()).hexdigest()
+        jobs = [JobDef(name=jobs[0].name, source=str(path), error=jobs[0].error, job_sha=job_sha)]
     return jobs
 
 
@@ -120,10 +126,13 @@ def _read_jobs(path: Path) -> list[JobDef]:
     try:
         raw = yaml.safe_load(path.read_text(encoding="utf-8"))
     except (OSError, UnicodeDecodeError, yaml.YAMLError) as exc:
-        return [JobDef(name=path.stem, source=str(path), error=f"{path}: cannot read the spec: {_first_line(exc)}")]
+        return [JobDef(name=_slug(path.stem), source=str(path),
+                       error=f"{path}: cannot read the spec: {_first_line(exc)}")]
     if not isinstance(raw, dict):
-        return [JobDef(name=path.stem, source=str(path), error=f"{path}: a spec is a YAML mapping, got {raw!r}")]
-    name = raw.get("name") if isinstance(raw.get("name"), str) else path.stem
+        return [JobDef(name=_slug(path.stem), source=str(path),
+                       error=f"{path}: a spec is a YAML mapping, got {raw!r}")]
+    name = raw.get("name")
+    name = name if isinstance(name, str) and SLUG.match(name) else _slug(path.stem)
     try:
         variants = parse_variants(raw.get("variants"), where=f"{path}: variants")
         policy = parse_policy(raw.get("remedies"), where=f"{path}: remedies")
@@ -156,6 +165,11 @@ def file_sha256(path: Path) -> str:
         for block in iter(lambda: handle.read(1 << 20), b""):
             digest.update(block)
     return digest.hexdigest()
+
+
+def _slug(text: str) -> str:
+    """A job (and folder) name from a file name: letters, digits, '-' and '_' only."""
+    return re.sub(r"[^A-Za-z0-9_-]+", "-", text).strip("-") or "spec"
 
 
 def _first_line(exc: Exception) -> str:
