@@ -60,6 +60,25 @@ def test_batch_killed_during_second_job_resumes_without_rerunning_the_first(tmp_
     assert "b_second: finished before and unchanged; skipped" in again.stdout
 
 
+def test_sigterm_stops_the_batch_kills_its_fit_and_keeps_the_state(tmp_path):
+    spec = line_output(tmp_path, "crop", group_sd=1.0)
+    out = tmp_path / "batch"
+    batch = start_batch(spec, "--out", out)
+    try:
+        guard = wait_for(lambda: (row := running_attempt(out, "crop")) and row["pid"] and process(row["pid"]),
+                         what="the job to start")
+        batch.send_signal(signal.SIGTERM)
+        output, _ = batch.communicate(timeout=60)
+    finally:
+        kill_session(batch)
+    assert batch.returncode == 130, output
+    assert f"continue with: hierwork batch --resume {out}" in output
+    wait_for(lambda: not pid_alive(guard.pid), timeout=10, what="the fit to be killed")
+    assert batch_state(out) == {"crop": ("interrupted", ["interrupted"])}
+    assert "crop" in (out / "index.md").read_text()
+    assert not (out / "jobs/crop/attempt-1").exists()
+
+
 @pytest.mark.slow
 def test_centred_funnel_is_rescued_by_the_remedies_and_attempts_are_kept(tmp_path):
     # Few rows per line and a small spread between lines: the centred form's funnel

@@ -6,6 +6,7 @@ import time
 
 import psutil
 import pytest
+import yaml
 
 from batchkit import (assert_run_folders_sound, batch_state, chain_processes, fit_process, kill_session,
                       line_output, pid_alive, start_batch, wait_for)
@@ -71,6 +72,8 @@ def test_batch_on_dask_survives_a_killed_worker(tmp_path, dask_cluster):
         run = out / "jobs" / name / "attempt-1"
         assert json.loads((run / "diagnostics.json").read_text())["passed"] is True
         assert (out / "jobs" / name / "attempt-1.log").read_text().startswith("[ran on ")
+        # the fit read the data shipped with the task, from the worker's temporary folder
+        assert "hierwork-job-" in yaml.safe_load((run / "spec.yaml").read_text())["data"]
     assert any((out / "jobs" / n / "attempt-1" / "diagnostics.json").stat().st_mtime > killed_at
                for n in ("depot_a", "depot_b", "depot_c"))
     assert_run_folders_sound(out)

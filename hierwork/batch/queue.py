@@ -73,6 +73,11 @@ class Queue:
                     self.db.execute(statement)
                 self.db.execute("INSERT OR IGNORE INTO meta VALUES ('format', ?)", (FORMAT,))
         fmt = self.meta("format")
+        for _ in range(50):  # a batch starting right now may not have committed its tables yet
+            if fmt is not None:
+                break
+            time.sleep(0.1)
+            fmt = self.meta("format")
         if fmt != FORMAT:
             raise RunFolderError(f"{str(self.path)!r} holds batch format {fmt!r}, expected {FORMAT!r}")
 
