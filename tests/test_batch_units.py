@@ -12,7 +12,7 @@ from hierwork.batch.progress import duration, eta_seconds
 from hierwork.batch.jobs import load_jobs
 from hierwork.batch.queue import Queue
 from hierwork.batch.remedies import DEFAULT_POLICY, Policy, Step, next_remedy, parse_policy
-from hierwork.batch.variants import expand_variants, parse_variants
+from hierwork.batch.variants import describe_variants, expand_variants, parse_variants
 from hierwork.errors import HierworkError, SpecError
 
 
@@ -62,6 +62,14 @@ def test_sweep_is_the_cartesian_product_with_readable_names():
 
 def test_a_spec_without_variants_is_one_job():
     assert expand_variants({"name": "crop"}) == [("crop", {})]
+    assert describe_variants({"name": "crop"}) == []
+
+
+def test_check_text_lists_the_jobs_of_a_sweep():
+    spec = {"name": "crop", "variants": [{"name": "base"}, {"name": "nc", "set": {
+        "groups.plot.parameterisation": "non_centred"}}]}
+    assert describe_variants(spec) == ["variants (2 jobs in a batch)", "  crop.base: as written",
+                                       "  crop.nc: groups.plot.parameterisation='non_centred'"]
 
 
 def test_sweep_keys_sharing_a_last_part_use_the_whole_path():

@@ -22,17 +22,20 @@ def is_terminal() -> bool:
 
 
 class Log:
-    """Append timestamped lines to ``batch.log``; echo them when stdout is not a terminal."""
+    """Append timestamped lines to ``batch.log`` and show them: above the live view on a
+    terminal, else on stdout."""
 
-    def __init__(self, path):
+    def __init__(self, path, view: "LiveView | None" = None):
         self.path = Path(path)
-        self.echo = not is_terminal()
+        self.view = view
 
     def write(self, line: str) -> None:
         text = f"{datetime.now():%Y-%m-%d %H:%M:%S} {line}"
         with open(self.path, "a", encoding="utf-8") as handle:
             handle.write(text + "\n")
-        if self.echo:
+        if self.view:
+            self.view.note(text)
+        else:
             print(text, flush=True)
 
 
@@ -118,16 +121,21 @@ class LiveView:
         self.drawn = 0
         self.last = 0.0
 
-    def refresh(self, force: bool = False) -> None:
+    def refresh(self, force: bool = False, above: str | None = None) -> None:
+        """Redraw (at most once a second unless ``force``), printing ``above`` first if given."""
         if not force and time.monotonic() - self.last < 1.0:
             return
         self.last = time.monotonic()
         width = shutil.get_terminal_size().columns - 1
-        lines = status_lines(self.queue, width)
+        lines = ([above] if above else []) + status_lines(self.queue, width)
         up = f"\x1b[{self.drawn}F" if self.drawn else ""
         sys.stdout.write(up + "\x1b[J" + "\n".join(lines) + "\n")
         sys.stdout.flush()
-        self.drawn = len(lines)
+        self.drawn = len(lines) - (1 if above else 0)
+
+    def note(self, line: str) -> None:
+        """Print a log line above the view, which stays at the bottom."""
+        self.refresh(force=True, above=line)
 
     def close(self) -> None:
         self.refresh(force=True)

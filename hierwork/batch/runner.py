@@ -81,13 +81,14 @@ def run_jobs(batch_dir, jobs: list[JobDef], executor, slots: int, sources: list[
         queue.close()
         executor.close()
         raise
-    log = progress.Log(batch_dir / "batch.log")
+    view = progress.LiveView(queue) if progress.is_terminal() else None
+    log = progress.Log(batch_dir / "batch.log", view)
     try:
         queue.set_meta("sources", sources)
         queue.set_meta("slots", slots)
         for stale in queue.interrupt_stale():
             log.write(f"{stale['job']}: attempt {stale['number']} was interrupted; it will run again")
-        loop = _Loop(batch_dir, queue, executor, log)
+        loop = _Loop(batch_dir, queue, executor, log, view)
         loop.prepare(jobs)
         loop.run()
         queue.release()
@@ -99,13 +100,13 @@ def run_jobs(batch_dir, jobs: list[JobDef], executor, slots: int, sources: list[
 
 
 class _Loop:
-    def __init__(self, batch_dir: Path, queue: Queue, executor, log):
+    def __init__(self, batch_dir: Path, queue: Queue, executor, log, view):
         self.dir = batch_dir
         self.queue = queue
         self.executor = executor
         self.log = log
+        self.view = view
         self.pending = deque()
-        self.view = progress.LiveView(queue) if progress.is_terminal() else None
 
     def prepare(self, jobs: list[JobDef]) -> None:
         """Register jobs, skip finished ones and queue each remaining job's next attempt."""

@@ -173,3 +173,14 @@ def expand_variants(spec) -> list[tuple[str, dict]]:
     if not variants:
         return [(name, {})]
     return [(f"{name}.{v.name}", dict(v.overrides)) for v in variants]
+
+
+def describe_variants(spec) -> list[str]:
+    """Lines for ``hierwork check``: the jobs a batch would make of this spec (empty without variants)."""
+    jobs = expand_variants(spec)
+    if len(jobs) == 1 and not jobs[0][1]:
+        return []
+    lines = [f"variants ({len(jobs)} jobs in a batch)"]
+    for name, overrides in jobs:
+        lines.append(f"  {name}: " + (", ".join(f"{k}={v!r}" for k, v in overrides.items()) or "as written"))
+    return lines
