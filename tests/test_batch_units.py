@@ -175,6 +175,15 @@ def test_jobs_carry_absolute_data_and_change_hash_with_spec_or_data(tmp_path):
     assert load_jobs([tmp_path])[0].job_sha == a.job_sha
 
 
+def test_a_variant_may_point_at_other_data_relative_to_its_spec(tmp_path):
+    write_spec(tmp_path, "crop", "variants: [{name: y1}, {name: y2, set: {data: season2/crop.csv}}]\n")
+    (tmp_path / "season2").mkdir()
+    (tmp_path / "season2" / "crop.csv").write_text("g,y\na,3.0\nb,4.0\n")
+    one, two = load_jobs([tmp_path / "crop.yaml"])
+    assert two.spec["data"] == str(tmp_path / "season2" / "crop.csv") and two.overrides == {}
+    assert one.data_sha != two.data_sha and one.job_sha != two.job_sha
+
+
 def test_unreadable_spec_becomes_an_invalid_job_and_duplicates_are_refused(tmp_path):
     (tmp_path / "broken.yaml").write_text("name: [unclosed\n")
     (job,) = load_jobs([tmp_path / "broken.yaml"])
