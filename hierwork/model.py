@@ -214,8 +214,13 @@ def _centred(name, mean, sd, chol, dims):
 
 
 def likelihood(plan: ModelPlan, eta, extras) -> None:
-    """Add the observed outcome ``y`` given the linear predictor ``eta`` (per row)."""
-    y, fam = plan.y, plan.family
+    """Add the observed outcome ``y`` given the linear predictor ``eta`` (per row).
+
+    The outcome enters as data (``y_data``), so a compiled model can be refitted
+    to new outcomes of the same design without recompiling (nutpie's
+    ``with_data``), as simulation-based calibration does.
+    """
+    y, fam = pm.Data("y_data", plan.y), plan.family
     if plan.exposure is not None:
         eta = eta + np.log(plan.exposure)
     if fam == "normal":

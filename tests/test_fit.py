@@ -1,0 +1,110 @@
+"""The fit pipeline end to end: the run folder contract, exit codes, reproducibility, atomicity.
+
+Data: the rail travel times (Devore 2000, Example 10.10; tests/data/SOURCES.md).
+Values are checked by the external tests; here we check the pipeline's contract.
+"""
+from __future__ import annotations
+
+import json
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import pytest
+
+import hierwork
+from hierwork.cli import main
+
+RAIL = Path(__file__).parent / "data" / "rail.csv"
+SPEC = f"""
+format: hierwork/1
+name: rail
+data: {RAIL}
+outcome: {{column: travel_ns}}
+groups:
+  rail: {{}}
+sampling: {{chains: 2, warmup: 300, draws: 300, seed: 11}}
+"""
+
+
+@pytest.fixture(scope="module")
+def rail_run(tmp_path_factory):
+    folder = tmp_path_factory.mktemp("fit")
+    spec = folder / "rail.yaml"
+    spec.write_text(SPEC)
+    return hierwork.fit(spec, out=folder / "run", overrides={"gate.ess_bulk_min": 100, "gate.ess_tail_min": 100})
+
+
+def test_run_folder_has_every_file(rail_run):
+    names = {p.name for p in rail_run.path.iterdir()}
+    assert {"posterior.nc", "diagnostics.json", "group_estimates.csv", "summary.csv", "spec.yaml",
+            "provenance.json", "plan.json", "pooling.csv", "report.html", "summary.md"} <= names
+    assert not [p for p in rail_run.path.parent.iterdir() if ".tmp-" in p.name]
+
+
+def test_group_estimates_columns_and_units(rail_run):
+    table = rail_run.group_estimates
+    assert list(table.columns[:10]) == ["factor", "group", "term", "n", "no_pooling", "complete_pooling",
+                                        "partial_mean", "partial_sd", "lower", "upper"]
+    assert len(table) == 6 and set(table["n"]) == {3}
+    # No pooling is each rail's mean, complete pooling the grand mean (closed forms).
+    data = pd.read_csv(RAIL)
+    means = data.groupby("rail")["travel_ns"].mean()
+    np.testing.assert_allclose(table["no_pooling"].to_numpy(), means.loc[table["group"].astype(int)].to_numpy())
+    np.testing.assert_allclose(table["complete_pooling"], data["travel_ns"].mean())
+    assert (table["lower"] < table["partial_mean"]).all() and (table["partial_mean"] < table["upper"]).all()
+
+
+def test_summary_and_diagnostics_contract(rail_run):
+    summary = rail_run.summary
+    assert list(summary.columns) == ["parameter", "mean", "sd", "lower", "upper", "ess_bulk", "ess_tail", "r_hat"]
+    assert set(summary["parameter"]) == {"intercept", "residual_sd", "rail.sd"}
+    diag = rail_run.diagnostics
+    assert diag["format"] == "hierwork-diagnostics/1"
+    assert [c["name"] for c in diag["checks"]] == ["r_hat", "ess_bulk", "ess_tail", "divergences", "bfmi",
+                                                    "treedepth"]
+    assert diag["passed"] == all(c["passed"] for c in diag["checks"])
+    prov = rail_run.provenance
+    assert prov["seed"] == 11 and len(prov["data_sha256"]) == 64 and prov["path"] == "collapsed"
+    assert prov["packages"]["pymc"]
+
+
+def test_same_seed_same_numbers(rail_run, tmp_path):
+    again = hierwork.fit(rail_run.path / "spec.yaml", out=tmp_path / "again")
+    pd.testing.assert_frame_equal(again.group_estimates, rail_run.group_estimates)
+
+
+def test_spec_as_run_refits(rail_run):
+    spec = hierwork.load_spec(rail_run.path / "spec.yaml")
+    assert spec.data_path == RAIL.resolve()
+    assert spec.gate["ess_bulk_min"] == 100
+
+
+def test_gate_failure_exits_3_and_marks_every_output(rail_run, tmp_path, capsys):
+    out = tmp_path / "strict"
+    code = main(["fit", str(rail_run.path / "spec.yaml"), "--out", str(out), "--quiet",
+                 "--set", "gate.ess_bulk_min=1000000"])
+    last = capsys.readouterr().out.strip().splitlines()[-1]
+    assert code == 3
+    assert last.startswith("gate FAILED")
+    diag = json.loads((out / "diagnostics.json").read_text())
+    assert diag["passed"] is False
+    failed = [c for c in diag["checks"] if not c["passed"]]
+    assert [c["name"] for c in failed] == ["ess_bulk"] and failed[0]["worst_parameter"]
+    assert "NOT" in (out / "report.html").read_text() or "not" in (out / "report.html").read_text()
+    assert json.loads((out / "provenance.json").read_text())["passed"] is False
+
+
+def test_force_replaces_only_after_success(rail_run, tmp_path, capsys):
+    out = tmp_path / "run"
+    out.mkdir()
+    (out / "old.txt").write_text("old")
+    code = main(["fit", str(rail_run.path / "spec.yaml"), "--out", str(out), "--force", "--quiet"])
+    assert code in (0, 3)
+    assert not (out / "old.txt").exists() and (out / "posterior.nc").exists()
+
+
+def test_run_load_rejects_incomplete_folder(tmp_path):
+    (tmp_path / "diagnostics.json").write_text("{}")
+    with pytest.raises(hierwork.RunFolderError, match="incomplete"):
+        hierwork.Run.load(tmp_path)
