@@ -6,6 +6,10 @@ check``), ``fit`` (``hierwork fit``), ``Run`` (a run folder loaded back), and
 """
 __version__ = "0.1.0"
 
+from . import blas as _blas  # noqa: E402  (before PyTensor is imported)
+
+_blas.configure()
+
 from .api import CheckReport, check, fit, run_demo  # noqa: E402
 from .errors import DataError, HierworkError, RunFolderError, SpecError  # noqa: E402
 from .runs import Run  # noqa: E402
