@@ -28,9 +28,9 @@ EXIT_STATUS = {0: "passed", 3: "failed", 2: "invalid"}
 GUARD = str(Path(__file__).with_name("guard.py"))
 _PR_SET_PDEATHSIG = 1
 _LIBC = ctypes.CDLL(None, use_errno=True) if sys.platform.startswith("linux") else None
-#: numeric libraries use one thread per process; chains already run in parallel
 #: a check's ``comparison`` states how it passes; a failed one broke it the other way
 NEGATED = {"<=": ">", ">=": "<", "<": ">=", ">": "<="}
+#: numeric libraries use one thread per process; chains already run in parallel
 THREAD_VARS = ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS")
 
 
