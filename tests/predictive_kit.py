@@ -46,7 +46,8 @@ def fit_run(folder: Path, spec_path, overrides=None):
     spec = hierwork.load_spec(run.path / "spec.yaml")
     plan = check(spec).plan
     predictive.augment(idata, plan, spec, spec.sampling["seed"])
-    idata.to_netcdf(str(run.path / "posterior.nc"), engine="h5netcdf")
+    idata.to_netcdf(str(run.path / "posterior.new.nc"), engine="h5netcdf")
+    (run.path / "posterior.new.nc").replace(run.path / "posterior.nc")
     return hierwork.Run.load(run.path)
 
 
