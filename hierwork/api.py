@@ -13,7 +13,7 @@ from pathlib import Path
 import numpy as np
 import yaml
 
-from . import __version__, runs
+from . import __version__, predictive, runs
 from .baselines import baselines
 from .data import load_dataset
 from .describe import describe, plan_as_dict
@@ -103,6 +103,28 @@ def _resolve_path(spec: Spec, plan: ModelPlan) -> tuple[str, str]:
     return requested, "set in the spec"
 
 
+def sample_posterior(report: CheckReport, progress: bool | None = None):
+    """Sample the posterior of a checked plan by its path; every ``F__effect`` included.
+
+    Parameters
+    ----------
+    report : CheckReport
+        From :func:`check` (plan, path, engine).
+    progress : bool, optional
+        Show the sampler's progress bar (default: when on a terminal).
+
+    Returns
+    -------
+    arviz.InferenceData
+    """
+    plan, settings = report.plan, report.plan.spec.sampling
+    if report.path == "collapsed":
+        problem = collapsed_problem(plan)
+        idata = run_sampler(build_collapsed_model(plan, problem), settings, report.engine, progress)
+        return add_group_effects(idata, plan, settings["seed"], problem)
+    return run_sampler(build_model(plan, reduced=report.path == "reduced"), settings, report.engine, progress)
+
+
 def fit(spec, out, force: bool = False, overrides: dict | None = None, progress: bool | None = None,
         command: str | None = None) -> runs.Run:
     """Check, sample, gate, estimate and write a run folder.
@@ -134,17 +156,12 @@ def fit(spec, out, force: bool = False, overrides: dict | None = None, progress:
     report = check(spec)
     plan = report.plan
     settings = spec.sampling
-    if report.path == "collapsed":
-        problem = collapsed_problem(plan)
-        idata = run_sampler(build_collapsed_model(plan, problem), settings, report.engine, progress)
-        add_group_effects(idata, plan, settings["seed"], problem)
-    else:
-        idata = run_sampler(build_model(plan, reduced=report.path == "reduced"), settings, report.engine,
-                            progress)
+    idata = sample_posterior(report, progress)
     gate = evaluate_gate(idata, spec.gate, settings["max_treedepth"])
     table = group_estimates(idata, plan, baselines(plan), spec.interval)
     summary = population_summary(idata, plan, spec.interval)
     pooling = pooling_factors(idata, plan)
+    extra_files = predictive.augment(idata, plan, spec, settings["seed"])
     finished = _dt.datetime.now(_dt.timezone.utc)
     provenance = {
         "format": runs.RUN_FORMAT, "hierwork": __version__, "python": platform.python_version(),
@@ -168,6 +185,8 @@ def fit(spec, out, force: bool = False, overrides: dict | None = None, progress:
         (tmp / "spec.yaml").write_text(_spec_as_run(spec), encoding="utf-8")
         runs.write_json(tmp / "provenance.json", provenance)
         runs.write_json(tmp / "plan.json", report.to_dict())
+        for name, text in extra_files.items():
+            (tmp / name).write_text(text, encoding="utf-8")
         write_report(tmp)
     return runs.Run.load(out)
 

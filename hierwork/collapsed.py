@@ -69,9 +69,9 @@ class Level:
 class _Step:
     """Index bookkeeping of one level of the upward pass."""
 
-    zpos: np.ndarray   # this level's columns inside the tracked ones
-    keep: np.ndarray   # tracked positions passed upwards (r is last)
-    tracked: tuple[int, ...]
+    zpos: tuple        # this level's columns, as positions among the tracked ones
+    keep: tuple        # tracked positions passed upwards (the ancestors' columns)
+    tracked: tuple     # design columns tracked at this level (own and ancestors')
 
 
 def _layout(levels: list[Level], n_cells: int) -> list[_Step]:
@@ -91,89 +91,147 @@ def _layout(levels: list[Level], n_cells: int) -> list[_Step]:
     for k, level in enumerate(levels):
         tracked = tuple(sorted(set().union(*(lv.cols for lv in levels[k:]))))
         above = set().union(*(lv.cols for lv in levels[k + 1:])) if k + 1 < len(levels) else set()
-        pos = {c: i for i, c in enumerate(tracked)}
-        keep = [pos[c] for c in tracked if c in above] + [len(tracked)]
-        steps.append(_Step(zpos=np.array([pos[c] for c in level.cols]),
-                           keep=np.array(keep), tracked=tracked))
+        steps.append(_Step(zpos=tuple(tracked.index(c) for c in level.cols),
+                           keep=tuple(i for i, c in enumerate(tracked) if c in above),
+                           tracked=tracked))
     return steps
 
 
-def _cholesky(xp, A, q):
-    """Lower Cholesky factor of a batch of small SPD matrices, unrolled.
+# Small matrices are held as nested lists of (J,) vectors (one per entry), so
+# every operation below is elementwise over groups: PyTensor fuses it into a few
+# loops with cheap gradients, and numpy runs it vectorised, with no loop over
+# groups. Symmetric matrices are dicts keyed by (i, k) with i <= k.
 
-    ``A`` is (J, q, q); returns nested lists ``R[i][k]`` (k <= i) of (J,)
-    entries. Unrolled over the static q so it vectorises over groups in both
-    numpy and PyTensor (with gradients) without a loop over groups.
-    """
+def _sym(S, i, k):
+    return S[(i, k) if i <= k else (k, i)]
+
+
+def _cholesky(xp, A, q):
+    """Lower Cholesky factor ``R[i][k]`` (k <= i) of symmetric ``A`` (dict of entries)."""
     R = [[None] * q for _ in range(q)]
     for i in range(q):
         for k in range(i + 1):
-            s = A[:, i, k]
+            s = _sym(A, i, k)
             for m in range(k):
                 s = s - R[i][m] * R[k][m]
             R[i][k] = xp.sqrt(s) if i == k else s / R[k][k]
     return R
 
 
-def _forward_solve(xp, R, B):
-    """``R^{-1} B`` for lower-triangular ``R`` (nested lists) and B (J, q, c)."""
-    q = len(R)
-    rows = []
-    for i in range(q):
-        s = B[:, i, :]
+def _forward(R, v):
+    """``R^{-1} v`` for lower-triangular ``R`` and a list ``v`` of entries."""
+    out = []
+    for i in range(len(R)):
+        s = v[i]
         for m in range(i):
-            s = s - R[i][m][:, None] * rows[m]
-        rows.append(s / R[i][i][:, None])
-    return xp.stack(rows, axis=1)
+            s = s - R[i][m] * out[m]
+        out.append(s / R[i][i])
+    return out
 
 
-def _segment_sum(xp, values, index, n_out):
-    """Sum ``values`` (leading axis) into ``n_out`` slots given by ``index``."""
+def _backward(R, v):
+    """``R^{-T} v`` for lower-triangular ``R`` and a list ``v`` of entries."""
+    q = len(R)
+    w = [None] * q
+    for i in range(q - 1, -1, -1):
+        s = v[i]
+        for m in range(i + 1, q):
+            s = s - R[m][i] * w[m]
+        w[i] = s / R[i][i]
+    return w
+
+
+def _segment_sum(xp, columns, index, n_out):
+    """Sum each (J,) column into ``n_out`` groups given by ``index``, in one operation."""
+    values = xp.stack(columns, axis=1)
     if xp is np:
-        out = np.zeros((n_out,) + values.shape[1:])
+        out = np.zeros((n_out, len(columns)))
         np.add.at(out, index, values)
-        return out
-    return xp.inc_subtensor(xp.zeros((n_out,) + tuple(values.shape[1:]))[index], values)
+    else:
+        out = xp.inc_subtensor(xp.zeros((n_out, len(columns)))[index], values)
+    return [out[:, i] for i in range(len(columns))]
 
 
-def _leaf_gram(xp, stats: CellStats, b, cols, sigma):
-    """Tracked Gram ``[X_C, r]' W [X_C, r] / s^2`` per cell, and n log 2 pi + log|noise|."""
-    bt = stats.shifted(b)                                  # (J, p)
-    xtx_b = (stats.xtx * bt[:, None, :]).sum(axis=-1)      # (J, p)
-    rr = stats.yty - 2.0 * (bt * stats.xty).sum(axis=-1) + (bt * xtx_b).sum(axis=-1)
-    cols = list(cols)
-    Cr = stats.xty[:, cols] - xtx_b[:, cols]               # (J, c)
-    CC = stats.xtx[:, cols][:, :, cols]                    # (J, c, c) constant
-    top = xp.concatenate([CC, Cr[:, :, None]], axis=2)
-    bottom = xp.concatenate([Cr[:, None, :], rr[:, None, None]], axis=2)
-    T = xp.concatenate([top, bottom], axis=1)
+def _matvec(xp, A, v):
+    """``A @ v`` for a constant (J, k) matrix; numpy's BLAS path is slow on tall
+    thin operands (and when its threads compete with the chains), einsum is not."""
+    return np.einsum("jk,k->j", A, v) if xp is np else xp.dot(A, v)
+
+
+def _leaf(xp, stats: CellStats, b, cols, sigma):
+    """Residual and tracked-column products per cell, scaled by the noise.
+
+    Returns ``rr = r'Wr / s^2``, ``Cr[a] = X_a'Wr / s^2``, ``CC[(a, c)] =
+    X_a'WX_c / s^2`` for tracked columns, and ``n log 2 pi + log|noise|``.
+    """
+    # Split b into the intercept, shifted per cell (d = b_0 - centre_j), and the rest,
+    # so products stay free of cancellation and cost a few matrix-vector products.
+    d = b[0] - stats.centre
+    xtx, xty = stats.xtx, stats.xty
+    rr = stats.yty - 2.0 * d * xty[:, 0] + d * d * xtx[:, 0, 0]
+    xtx_b = [xtx[:, c, 0] * d for c in cols]                   # (X'X b~)_c, completed below
+    if stats.n_terms > 1:
+        rest = b[1:]
+        p1 = stats.n_terms - 1
+        outer = (rest[:, None] * rest[None, :]).reshape((-1,))
+        rr = (rr + _matvec(xp, xtx[:, 1:, 1:].reshape(-1, p1 * p1), outer)
+              + 2.0 * d * _matvec(xp, xtx[:, 0, 1:], rest) - 2.0 * _matvec(xp, xty[:, 1:], rest))
+        xtx_b = [v + _matvec(xp, xtx[:, c, 1:], rest) for v, c in zip(xtx_b, cols)]
+    Cr = [xty[:, c] - v for c, v in zip(cols, xtx_b)]
+    CC = {(i, k): stats.xtx[:, cols[i], cols[k]] for i in range(len(cols)) for k in range(i, len(cols))}
     acc = stats.n * _LOG_2PI
     if stats.known_sd:
-        return T, acc + stats.log_noise_var
-    return T / sigma**2, acc + stats.n * xp.log(sigma**2)
+        return rr, Cr, CC, acc + stats.log_noise_var
+    inv = 1.0 / sigma**2
+    return (rr * inv, [v * inv for v in Cr], {key: v * inv for key, v in CC.items()},
+            acc + stats.n * xp.log(sigma**2))
+
+
+def _integrate(xp, rr, Cr, CC, acc, step: _Step, L):
+    """Integrate one level's effects out of every group (see module docstring).
+
+    Returns the products passed upwards and, for the draws, ``(R, e, F)``:
+    ``e = R^{-1} L'Z'r`` and ``F[i][k] = (R^{-1} L'Z'X_keep)[i, k]``.
+    """
+    z, keep, q = step.zpos, step.keep, len(step.zpos)
+    Lt = [[L[a, i] for a in range(q)] for i in range(q)]             # Lt[i][a] = L[a, i]
+    # L'Z'r and L'Z'Z L (L lower triangular: L[a, i] = 0 for a < i).
+    c = [sum(Lt[i][a] * Cr[z[a]] for a in range(i, q)) for i in range(q)]
+    LtZZ = [[sum(Lt[i][a] * _sym(CC, z[a], z[m]) for a in range(i, q)) for m in range(q)]
+            for i in range(q)]
+    A = {(i, k): sum(LtZZ[i][m] * L[m, k] for m in range(k, q)) + (1.0 if i == k else 0.0)
+         for i in range(q) for k in range(i, q)}
+    R = _cholesky(xp, A, q)
+    e = _forward(R, c)
+    acc = acc + sum(2.0 * xp.log(R[i][i]) for i in range(q))
+    rr = rr - sum(v * v for v in e)
+    F = []
+    if keep:
+        LtZK = [[sum(Lt[i][a] * _sym(CC, z[a], kk) for a in range(i, q)) for kk in keep]
+                for i in range(q)]
+        by_col = [_forward(R, [LtZK[i][k] for i in range(q)]) for k in range(len(keep))]
+        F = [[by_col[k][i] for k in range(len(keep))] for i in range(q)]
+        Cr = [Cr[kk] - sum(F[i][k] * e[i] for i in range(q)) for k, kk in enumerate(keep)]
+        CC = {(k, m): _sym(CC, keep[k], keep[m]) - sum(F[i][k] * F[i][m] for i in range(q))
+              for k in range(len(keep)) for m in range(k, len(keep))}
+    return rr, Cr, CC, acc, (R, e, F)
 
 
 def _upward(xp, stats, levels, steps, b, chols, sigma, keep_factors=False):
     """Integrate the chain leaves up; per-top-group log-likelihood (+ factors)."""
-    T, acc = _leaf_gram(xp, stats, b, steps[0].tracked, sigma)
+    rr, Cr, CC, acc = _leaf(xp, stats, b, steps[0].tracked, sigma)
     factors = []
     for k, (level, step, L) in enumerate(zip(levels, steps, chols)):
         if k > 0:
-            T = _segment_sum(xp, T, levels[k - 1].parent, level.n_groups)
-            acc = _segment_sum(xp, acc, levels[k - 1].parent, level.n_groups)
-        q = level.q
-        LtB = (L.T[None, :, :, None] * T[:, step.zpos, :][:, None, :, :]).sum(axis=2)       # L'T_Z
-        A = (LtB[:, :, step.zpos][:, :, :, None] * L[None, None, :, :]).sum(axis=2)
-        A = A + np.eye(q)[None]
-        R = _cholesky(xp, A, q)
-        F = _forward_solve(xp, R, LtB)                                            # (J, q, c+1)
-        for i in range(q):
-            acc = acc + 2.0 * xp.log(R[i][i])
-        Fk = F[:, :, step.keep]
-        T = T[:, step.keep][:, :, step.keep] - (Fk[:, :, :, None] * Fk[:, :, None, :]).sum(axis=1)
+            keys = list(CC)
+            summed = _segment_sum(xp, [rr, acc] + Cr + [CC[key] for key in keys],
+                                  levels[k - 1].parent, level.n_groups)
+            rr, acc, Cr = summed[0], summed[1], summed[2:2 + len(Cr)]
+            CC = dict(zip(keys, summed[2 + len(Cr):]))
+        rr, Cr, CC, acc, factor = _integrate(xp, rr, Cr, CC, acc, step, L)
         if keep_factors:
-            factors.append((R, F))
-    return -0.5 * (acc + T[:, 0, 0]), factors
+            factors.append(factor)
+    return -0.5 * (acc + rr), factors
 
 
 def collapsed_group_loglik(stats: CellStats, levels: list[Level], b, chols, sigma=None, xp=None):
@@ -293,29 +351,17 @@ def draw_effects(stats: CellStats, levels: list[Level], b, chols, sigma=None,
                              None if sigma is None else float(sigma[d]), keep_factors=True)
         above = np.zeros((levels[-1].n_groups, p))          # ancestors' effects, by column
         for k in range(len(levels) - 1, -1, -1):
-            level, step, (R, F) = levels[k], steps[k], factors[k]
-            delta = above[:, list(step.tracked)]
-            v = F[:, :, -1] - (F[:, :, :-1] * delta[:, None, :]).sum(axis=-1)
-            v = v + rng.standard_normal(v.shape)
-            w = _backward_solve(R, v)
-            u = w @ L_d[k].T
+            level, step, (R, e, F) = levels[k], steps[k], factors[k]
+            v = [e[i] + rng.standard_normal(level.n_groups) for i in range(level.q)]
+            for j, kk in enumerate(step.keep):
+                delta = above[:, step.tracked[kk]]
+                v = [v[i] - F[i][j] * delta for i in range(level.q)]
+            u = np.stack(_backward(R, v), axis=1) @ L_d[k].T
             out[k][d] = u
             above[:, list(level.cols)] += u
             if k > 0:
                 above = above[levels[k - 1].parent]
     return out, group_ll
-
-
-def _backward_solve(R, v):
-    """``R^{-T} v`` for lower-triangular ``R`` (nested lists of (J,)) and v (J, q)."""
-    q = len(R)
-    w = [None] * q
-    for i in range(q - 1, -1, -1):
-        s = v[:, i]
-        for m in range(i + 1, q):
-            s = s - R[m][i] * w[m]
-        w[i] = s / R[i][i]
-    return np.stack(w, axis=1)
 
 
 def _f64(xp, x):

@@ -84,9 +84,9 @@ def prior_rv(name: str, priors: list, dims=None):
 def population_block(plan: ModelPlan, centre: bool):
     """Population coefficients ``b`` (data units) and the family's extra parameters.
 
-    Returns ``(b, centred intercept, means)``: with ``centre`` the sampled
-    intercept is the linear predictor at the predictors' means, ``a``, and
-    ``b[intercept] = a - sum_k b_k m_k``; ``means`` are the ``m_k`` (0 without centring).
+    Returns ``(b, means)``: with ``centre`` the sampled intercept is the linear
+    predictor at the predictors' means, ``a``, and ``b[intercept] = a - sum_k b_k m_k``;
+    ``means`` are the ``m_k`` (0 without centring).
     """
     terms = plan.terms
     means = plan.X[:, 1:].mean(axis=0) if centre else np.zeros(len(terms) - 1)
@@ -101,9 +101,8 @@ def population_block(plan: ModelPlan, centre: bool):
         pm.Potential("intercept_prior", pm.logp(dist.dist(**params), intercept))
     else:
         intercept = prior_rv("b_intercept", [plan.priors["intercept"]])
-        a = intercept
     b = pm.Deterministic("b", pt.concatenate([pt.stack([intercept]), slopes]), dims="term")
-    return b, a, means
+    return b, means
 
 
 def family_extras(plan: ModelPlan) -> dict:
@@ -164,8 +163,7 @@ def build_model(plan: ModelPlan, centre: bool = True, reduced: bool = False) -> 
     pymc.Model
     """
     with pm.Model(coords=coords_of(plan)) as model:
-        b, a, means = population_block(plan, centre)
-        coef_c = pt.concatenate([pt.stack([a]), b[1:]])  # population coefficients on the centred columns
+        b, means = population_block(plan, centre)
         extras = family_extras(plan)
         anchored: set = set()
         parts = []  # (factor, per-group values in data units multiplying its varying columns, shift)
@@ -178,9 +176,10 @@ def build_model(plan: ModelPlan, centre: bool = True, reduced: bool = False) -> 
             dims = (f.name, f"{f.name}__term")
             shape = (f.n_groups, len(f.varying))
             if f.parameterisation == "centred" and not anchored:
-                mean = pt.broadcast_to(coef_c[list(f.varying_cols)], shape)
+                mean = pt.broadcast_to(b[list(f.varying_cols)], shape)  # data units: b_T + W gamma
                 if shift is not None:
                     mean = pt.set_subtensor(mean[:, 0], mean[:, 0] + shift)
+                mean = pt.dot(mean, A.T)  # at centred x
                 coef = _centred(f"{f.name}__coef", mean, sd, chol_c, dims)
                 effect_c = coef - mean
                 parts.append((f, pt.dot(coef, to_data), None))

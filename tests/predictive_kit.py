@@ -4,14 +4,10 @@ from __future__ import annotations
 import functools
 from pathlib import Path
 
-import arviz as az
 
 import hierwork
 from hierwork import predictive
-from hierwork.api import check
-from hierwork.gaussian import add_group_effects, build_collapsed_model, collapsed_problem
-from hierwork.model import build_model
-from hierwork.sampling import run_sampler
+from hierwork.api import check, sample_posterior
 
 DATA = Path(__file__).parent / "data"
 DEMO = Path(__file__).parent.parent / "demo" / "data"
@@ -28,27 +24,12 @@ def write(folder: Path, text: str) -> Path:
 def sample(spec_path, overrides=None):
     """Plan and posterior of a spec by the path ``check`` chooses (no run folder)."""
     report = check(spec_path, {**SMALL, **(overrides or {})})
-    plan, settings = report.plan, report.plan.spec.sampling
-    if report.path == "collapsed":
-        problem = collapsed_problem(plan)
-        idata = run_sampler(build_collapsed_model(plan, problem), settings, "pymc", False)
-        add_group_effects(idata, plan, settings["seed"], problem)
-    else:
-        idata = run_sampler(build_model(plan, reduced=report.path == "reduced"), settings, "pymc", False)
-    return plan, idata
+    return report.plan, sample_posterior(report, progress=False)
 
 
 def fit_run(folder: Path, spec_path, overrides=None):
-    """A run folder through the public API, with the predictive groups added to posterior.nc."""
-    run = hierwork.fit(spec_path, out=folder / "run", overrides={**SMALL, **(overrides or {})}, progress=False)
-    idata = az.from_netcdf(run.path / "posterior.nc")
-    idata.load()
-    spec = hierwork.load_spec(run.path / "spec.yaml")
-    plan = check(spec).plan
-    predictive.augment(idata, plan, spec, spec.sampling["seed"])
-    idata.to_netcdf(str(run.path / "posterior.new.nc"), engine="h5netcdf")
-    (run.path / "posterior.new.nc").replace(run.path / "posterior.nc")
-    return hierwork.Run.load(run.path)
+    """A run folder through the public API."""
+    return hierwork.fit(spec_path, out=folder / "run", overrides={**SMALL, **(overrides or {})}, progress=False)
 
 
 CBPP = """format: hierwork/1

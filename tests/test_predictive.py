@@ -75,8 +75,6 @@ def test_pointwise_log_likelihood_matches_pymc(tmp_path, text, family):
     np.testing.assert_allclose(_ours(plan, idata), ref, rtol=0, atol=1e-8)
 
 
-@pytest.mark.xfail(strict=True, reason="hierwork/model.py: the first centred factor's group coefficients are "
-                   "at centred x, but rows add the raw non-varying slopes, so eta gains sum_k b_k mean(x_k)")
 def test_pointwise_log_likelihood_matches_pymc_centred_with_predictors(tmp_path):
     plan = check(kit.write(tmp_path, NESTED.replace("FAMILY", "normal")
                            .replace("non_centred}", "centred}", 1))).plan

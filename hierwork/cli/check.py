@@ -10,6 +10,8 @@ def register(sub) -> None:
     p = sub.add_parser("check", help="validate a spec and its data and print the model plan (no sampling)")
     p.add_argument("spec", help="model spec (YAML)")
     p.add_argument("--json", action="store_true", help="print the plan as JSON")
+    p.add_argument("--prior-predictive", action="store_true",
+                   help="also simulate outcomes from the priors and summarise what they imply")
     add_override_options(p)
     p.set_defaults(func=run)
 
@@ -19,6 +21,10 @@ def run(args) -> int:
 
     report = hierwork.check(args.spec, overrides_from(args))
     print(json.dumps(report.to_dict(), indent=2) if args.json else report.text())
+    if args.prior_predictive:
+        from hierwork.predictive import prior_predictive_text
+
+        print("\n" + prior_predictive_text(report.plan, report.plan.spec.sampling["seed"]))
     if not args.json:
         print("\ncheck OK: spec and data are valid")
     return 0

@@ -19,7 +19,7 @@ from importlib import resources
 import pandas as pd
 
 from hierwork.report import figures
-from hierwork.report.markup import Raw, el, esc
+from hierwork.report.markup import Raw, el
 from hierwork.report.runfolder import LOO_FILE, POOLING_FILE, RunFiles
 from hierwork.report.verdict import Verdict, fmt, verdict
 
