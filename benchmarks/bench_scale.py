@@ -1,0 +1,241 @@
+"""Scale benchmark: hierwork against the models a user would otherwise write.
+
+Builds three problems with a fixed seed (delivery depots: minutes late per
+delivery against distance, depots vary in their level):
+
+* S:     85 depots, ~1,000 rows
+* M:  2,000 depots, ~200,000 rows
+* L: 20,000 depots, ~2,000,000 rows (unequal group sizes throughout)
+
+and fits each, in the same run and with the same priors, chains and draws, by
+
+* ``hierwork``  -- ``hierwork.fit`` end to end (spec + CSV -> run folder), fast path;
+* ``pymc-nc``   -- a hand-written non-centred PyMC model, per-row likelihood, PyMC's NUTS;
+* ``nutpie-nc`` -- the same model sampled with nutpie;
+* ``nutpie-c``  -- its centred form sampled with nutpie.
+
+Each fit runs in its own process, killed at the time cap. Reported: wall time
+(including compile and, for hierwork, reading the data and writing the run),
+min bulk and tail ESS over every parameter and group effect, max R-hat,
+divergences, min-ESS per second, peak memory of the process tree, and
+hierwork's min-ESS/s ratio to each baseline.
+
+Usage::
+
+    python benchmarks/bench_scale.py --sizes S            # print the table
+    python benchmarks/bench_scale.py --sizes S M --cap 3600 --markdown results.md
+"""
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import platform
+import subprocess
+import sys
+import tempfile
+import time
+from pathlib import Path
+
+import numpy as np
+
+SIZES = {"S": (85, 1_000), "M": (2_000, 200_000), "L": (20_000, 2_000_000)}
+SEED = 20261202
+CHAINS, WARMUP, DRAWS = 2, 1000, 1000
+METHODS = ("hierwork", "pymc-nc", "nutpie-nc", "nutpie-c")
+TRUE = {"intercept": 25.0, "distance_km": 1.5, "depot_sd": 6.0, "residual_sd": 12.0}
+
+
+def make_problem(size: str, seed: int = SEED):
+    """Invented delivery data: (frame, depots). Group sizes are log-normal, at least 1."""
+    import pandas as pd
+
+    n_groups, n_rows = SIZES[size]
+    rng = np.random.default_rng([seed, ord(size)])
+    weights = rng.lognormal(0.0, 1.0, n_groups)
+    counts = 1 + rng.multinomial(n_rows - n_groups, weights / weights.sum())
+    depot = np.repeat(np.arange(n_groups), counts)
+    distance = rng.gamma(4.0, 2.5, depot.size)
+    level = rng.normal(0.0, TRUE["depot_sd"], n_groups)
+    minutes = (TRUE["intercept"] + TRUE["distance_km"] * distance + level[depot]
+               + rng.normal(0.0, TRUE["residual_sd"], depot.size))
+    frame = pd.DataFrame({"depot": [f"d{k:05d}" for k in depot], "distance_km": distance.round(3),
+                          "minutes_late": minutes.round(3)})
+    return frame, n_groups
+
+
+def write_problem(size: str, folder: Path) -> Path:
+    """CSV and spec of a problem; returns the spec path."""
+    import yaml
+
+    frame, _ = make_problem(size)
+    frame.to_csv(folder / "deliveries.csv", index=False)
+    spec = {"format": "hierwork/1", "name": f"bench-{size}", "data": "deliveries.csv",
+            "outcome": {"column": "minutes_late", "family": "normal"},
+            "predictors": ["distance_km"], "groups": {"depot": {"column": "depot"}},
+            "sampling": {"chains": CHAINS, "warmup": WARMUP, "draws": DRAWS, "seed": SEED}}
+    path = folder / "spec.yaml"
+    path.write_text(yaml.safe_dump(spec, sort_keys=False))
+    return path
+
+
+def summarise(idata, names) -> dict:
+    """Min bulk/tail ESS and max R-hat over the named variables (every element)."""
+    import arviz as az
+
+    post = idata.posterior[list(names)]
+    ess_bulk = az.ess(post, method="bulk")
+    ess_tail = az.ess(post, method="tail")
+    rhat = az.rhat(post)
+    lo = lambda ds: float(min(ds[v].min() for v in ds.data_vars))  # noqa: E731
+    return {"ess_bulk": lo(ess_bulk), "ess_tail": lo(ess_tail),
+            "r_hat": float(max(rhat[v].max() for v in rhat.data_vars)),
+            "divergences": int(idata.sample_stats["diverging"].sum())}
+
+
+def run_hierwork(size: str, folder: Path) -> dict:
+    import arviz as az
+
+    import hierwork
+
+    spec = write_problem(size, folder)
+    start = time.perf_counter()
+    run = hierwork.fit(spec, out=folder / "run", progress=False)
+    wall = time.perf_counter() - start
+    idata = az.from_netcdf(str(folder / "run" / "posterior.nc"))
+    prov = run.provenance
+    out = summarise(idata, ["b", "residual_sd", "depot__sd", "depot__effect"])
+    return {**out, "wall": wall, "gate": bool(run.passed), "note": f"{prov['path']} / {prov['engine']}"}
+
+
+def run_handwritten(size: str, folder: Path, engine: str, centred: bool) -> dict:
+    """The model as a PyMC user would write it, with hierwork's default priors."""
+    import pymc as pm
+
+    import hierwork
+
+    spec = write_problem(size, folder)
+    priors = hierwork.check(spec).plan.priors
+    frame, n_groups = make_problem(size)
+    start = time.perf_counter()
+    depot = frame["depot"].str[1:].astype(int).to_numpy()
+    x, y = frame["distance_km"].to_numpy(), frame["minutes_late"].to_numpy()
+    p = {k: priors[k].params for k in ("intercept", "distance_km", "residual_sd", "depot.sd")}
+    with pm.Model() as model:
+        b0 = pm.Normal("b0", **p["intercept"])
+        b1 = pm.Normal("b1", **p["distance_km"])
+        sigma = pm.HalfNormal("sigma", **p["residual_sd"])
+        tau = pm.HalfNormal("tau", **p["depot.sd"])
+        if centred:
+            u = pm.Normal("u", 0.0, tau, shape=n_groups)
+        else:
+            u = pm.Deterministic("u", tau * pm.Normal("z", 0.0, 1.0, shape=n_groups))
+        pm.Normal("y", b0 + b1 * x + u[depot], sigma, observed=y)
+    if engine == "nutpie":
+        import nutpie
+
+        idata = nutpie.sample(nutpie.compile_pymc_model(model), draws=DRAWS, tune=WARMUP, chains=CHAINS,
+                              cores=CHAINS, seed=SEED, progress_bar=False)
+    else:
+        idata = pm.sample(draws=DRAWS, tune=WARMUP, chains=CHAINS, cores=CHAINS, random_seed=SEED,
+                          model=model, progressbar=False, compute_convergence_checks=False)
+    wall = time.perf_counter() - start
+    return {**summarise(idata, ["b0", "b1", "sigma", "tau", "u"]), "wall": wall, "gate": None,
+            "note": "centred" if centred else "non-centred"}
+
+
+def one(method: str, size: str) -> dict:
+    with tempfile.TemporaryDirectory() as tmp:
+        if method == "hierwork":
+            return run_hierwork(size, Path(tmp))
+        engine, form = method.split("-")
+        return run_handwritten(size, Path(tmp), "nutpie" if engine == "nutpie" else "pymc", form == "c")
+
+
+def measure(method: str, size: str, cap: float) -> dict:
+    """Run one fit in a child process; track the tree's peak memory; kill at the cap."""
+    import psutil
+
+    cmd = [sys.executable, __file__, "--one", method, size]
+    start = time.perf_counter()
+    proc = subprocess.Popen(cmd, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+    parent, peak = psutil.Process(proc.pid), 0
+    while proc.poll() is None:
+        if time.perf_counter() - start > cap:
+            for p in parent.children(recursive=True) + [parent]:
+                p.kill()
+            proc.wait()
+            return {"method": method, "size": size, "skipped": f"exceeded the {cap:.0f} s cap"}
+        try:
+            procs = [parent] + parent.children(recursive=True)
+            peak = max(peak, sum(p.memory_info().rss for p in procs))
+        except psutil.NoSuchProcess:
+            pass
+        time.sleep(0.2)
+    stdout, stderr = proc.communicate()
+    if proc.returncode != 0:
+        return {"method": method, "size": size, "skipped": f"failed: {stderr.strip().splitlines()[-1:]}"}
+    result = json.loads(stdout.strip().splitlines()[-1])
+    result.update(method=method, size=size, peak_gib=peak / 2**30)
+    result["ess_per_s"] = min(result["ess_bulk"], result["ess_tail"]) / result["wall"]
+    return result
+
+
+def machine() -> str:
+    import psutil
+
+    cpu = platform.processor() or platform.machine()
+    try:
+        for line in Path("/proc/cpuinfo").read_text().splitlines():
+            if line.startswith("model name"):
+                cpu = line.split(":", 1)[1].strip()
+                break
+    except OSError:
+        pass
+    return (f"{cpu}; {os.cpu_count()} cores visible; {psutil.virtual_memory().total / 2**30:.1f} GiB RAM; "
+            f"Python {platform.python_version()}; load average at start {os.getloadavg()[0]:.1f}")
+
+
+def table(results: list[dict]) -> str:
+    head = ("| size | method | wall s | min ESS bulk | min ESS tail | max R-hat | divergences | "
+            "min-ESS/s | peak GiB | hierwork ratio | note |")
+    lines = [head, "|" + "---|" * 11]
+    for r in results:
+        if "skipped" in r:
+            lines.append(f"| {r['size']} | {r['method']} | | | | | | | | | {r['skipped']} |")
+            continue
+        ours = next((h for h in results if h["size"] == r["size"] and h["method"] == "hierwork"
+                     and "skipped" not in h), None)
+        ratio = "" if ours is None or r["method"] == "hierwork" else f"{ours['ess_per_s'] / r['ess_per_s']:.1f}x"
+        gate = "" if r["gate"] is None else ("; gate passed" if r["gate"] else "; gate FAILED")
+        lines.append(f"| {r['size']} | {r['method']} | {r['wall']:.1f} | {r['ess_bulk']:.0f} | "
+                     f"{r['ess_tail']:.0f} | {r['r_hat']:.3f} | {r['divergences']} | {r['ess_per_s']:.2f} | "
+                     f"{r['peak_gib']:.2f} | {ratio} | {r['note']}{gate} |")
+    return "\n".join(lines)
+
+
+def main(argv=None) -> None:
+    parser = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
+    parser.add_argument("--sizes", nargs="+", default=["S"], choices=list(SIZES))
+    parser.add_argument("--methods", nargs="+", default=list(METHODS), choices=METHODS)
+    parser.add_argument("--cap", type=float, default=3600.0, help="seconds per baseline fit (default 3600)")
+    parser.add_argument("--markdown", type=Path, help="also write the table and machine line here")
+    parser.add_argument("--one", nargs=2, metavar=("METHOD", "SIZE"), help=argparse.SUPPRESS)
+    args = parser.parse_args(argv)
+    if args.one:
+        print(json.dumps(one(*args.one)))
+        return
+    results = []
+    for size in args.sizes:
+        for method in args.methods:
+            results.append(measure(method, size, args.cap))
+            print(f"{size} {method}: {json.dumps(results[-1])}", file=sys.stderr, flush=True)
+    text = f"Machine: {machine()}\nChains {CHAINS} x ({WARMUP} warmup + {DRAWS} draws), seed {SEED}.\n\n"
+    text += table(results)
+    print(text)
+    if args.markdown:
+        args.markdown.write_text(text + "\n", encoding="utf-8")
+
+
+if __name__ == "__main__":
+    main()
