@@ -37,6 +37,10 @@ from .plan import FactorPlan, ModelPlan
 from .suffstats import CellStats, cell_index, cell_stats
 
 
+#: Second word of the seed of the group-effect draws (keeps them off the sampler's stream).
+_DRAW_STREAM = 5
+
+
 def nesting_chain(plan: ModelPlan) -> list[FactorPlan] | None:
     """The plan's factors finest first if they form one nesting chain, else None."""
     by_parent = {}
@@ -119,7 +123,7 @@ def build_collapsed_model(plan: ModelPlan, problem: CollapsedProblem | None = No
 
 
 def add_group_effects(idata, plan: ModelPlan, seed, problem: CollapsedProblem | None = None,
-                      group_log_likelihood: bool = False):
+                      group_log_likelihood: bool = True):
     """Draw every ``F__effect`` exactly for each posterior draw, in place.
 
     Parameters
@@ -127,12 +131,13 @@ def add_group_effects(idata, plan: ModelPlan, seed, problem: CollapsedProblem | 
     idata : arviz.InferenceData
         Posterior of the collapsed model (``b``, ``F__sd``, ``F__corr``, ...).
     plan : ModelPlan
-    seed : int or numpy.random.SeedSequence
-        Seeds the numpy Generator of the draws (reproducible runs).
+    seed : int
+        The run's seed; the draws use their own stream derived from it, so
+        they are reproducible and independent of the sampler's.
     problem : CollapsedProblem, optional
         Reuse the statistics of :func:`build_collapsed_model`.
     group_log_likelihood : bool
-        Also store ``log_likelihood["y_by_<top factor>"]`` (chain, draw, group):
+        Store (default; computed in the same pass) ``log_likelihood["y_by_<top factor>"]`` (chain, draw, group):
         each top-level group's log-likelihood with its effects integrated out,
         for leave-one-group-out comparison.
 
@@ -153,7 +158,7 @@ def add_group_effects(idata, plan: ModelPlan, seed, problem: CollapsedProblem | 
     chols = [_chol_draws(flat, f) for f in problem.chain]
     sigma = None if plan.known_sd is not None else flat("residual_sd")
     effects, group_ll = collapsed.draw_effects(problem.stats, list(problem.levels), coef, chols,
-                                               sigma, rng=np.random.default_rng(seed))
+                                               sigma, rng=np.random.default_rng([int(seed), _DRAW_STREAM]))
     for f, u in zip(problem.chain, effects):
         post[f"{f.name}__effect"] = xr.DataArray(
             u.reshape(n_chain, n_draw, f.n_groups, len(f.varying)),
