@@ -11,20 +11,22 @@ E_f u_f[group_f(j)]`` and its log-likelihood is
 Collapsed form for a nesting chain of factors (level 0 is the finest and its
 groups are the cells; each level's groups sit inside one group of the next).
 The effects of every level are integrated out, leaves first (BDA3 §5.4 and
-standard Gaussian identities; see ``fast-path.md``). For one group with
-tracked Gram matrix ``T`` of the columns still needed above and the residual
-``r = y - X b`` (last row/column), a factor with columns Z and covariance
-``S = L L'`` is integrated with
+standard Gaussian identities; see ``fast-path.md``). Each group carries the
+noise-weighted products of the residual ``r = y - X b`` and of the design
+columns still needed above it: ``rr = r'V^{-1}r``, ``Cr = X_C'V^{-1}r``,
+``CC = X_C'V^{-1}X_C`` (at the leaves ``V`` is the noise covariance). A
+factor with columns Z and covariance ``S = L L'`` is integrated with
 
-    A = I + L' T_ZZ L,   R = chol(A),   F = R^{-1} L' T_Z.
-    T  <-  T - F'F,      log|V|  +=  2 sum log diag R,
+    A = I + L' CC_ZZ L,   R = chol(A),   e = R^{-1} L' Cr_Z,   F = R^{-1} L' CC_ZK,
+    rr <- rr - e'e,   Cr_K <- Cr_K - F'e,   CC_KK <- CC_KK - F'F,   log|V| += 2 sum log diag R,
 
-which is Woodbury's identity and the matrix determinant lemma in the
-Cholesky-of-S form (stable when an SD tends to zero). After the last level
-``T_rr = r'V^{-1}r``. Given the effects ``delta`` of its ancestors (in
-tracked-column coordinates) a group's effect is exactly
+(K: the ancestors' columns), which is Woodbury's identity and the matrix
+determinant lemma in the Cholesky-of-S form (stable when an SD tends to
+zero); children's products are then summed into their parent. After the top
+level, ``rr`` is the whole quadratic form. Given its ancestors' effects
+``delta`` (on the columns K) a group's effect is exactly
 
-    u = L R^{-T} (F_r - F_C delta + z),   z ~ N(0, I),
+    u = L R^{-T} (e - F delta + z),   z ~ N(0, I),
 
 the conditional ``N(M^{-1} Z'r, s^2 M^{-1})`` of the design note with
 ``M = s^2 S^{-1} + Z'Z``.
@@ -312,7 +314,7 @@ def reduced_loglik(stats: CellStats, b, effects, sigma=None, xp=None):
 
 
 def draw_effects(stats: CellStats, levels: list[Level], b, chols, sigma=None,
-                 rng: np.random.Generator | None = None) -> list[np.ndarray]:
+                 rng: np.random.Generator | None = None) -> tuple[list, np.ndarray]:
     """Exact draws of every level's group effects given each posterior draw.
 
     Parameters

@@ -147,7 +147,8 @@ def test_reduced_likelihood_equals_per_row_normal(tmp_path):
                                               "c": {}}})
     fa, fc = plan.factor("a"), plan.factor("c")
     b = rng.normal(size=2) + [50, 0]
-    va, vc, shift, s = rng.normal(size=(fa.n_groups, 2)), rng.normal(size=(fc.n_groups, 1)), rng.normal(size=fa.n_groups), 2.5
+    va, vc = rng.normal(size=(fa.n_groups, 2)), rng.normal(size=(fc.n_groups, 1))
+    shift, s = rng.normal(size=fa.n_groups), 2.5
     # a centred factor carries column 0 and 1 (free_cols excludes them)
     mean = (va[fa.index] * plan.X[:, [0, 1]]).sum(1) + shift[fa.index] + vc[fc.index, 0]
     ref = stats.norm.logpdf(plan.y, mean, s).sum()
