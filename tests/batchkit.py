@@ -13,13 +13,13 @@ import psutil
 from hierwork.batch.queue import Queue
 
 # Small draws keep each fit to seconds; the gate's ESS minimum is lowered to
-# match (400 is common practice for 4 chains x 1000 draws; these fits keep 4 x 500).
-SAMPLING = "sampling: {chains: 4, warmup: 500, draws: 500, engine: pymc, path: %s, seed: %d}\n"
+# match (400 is common practice for 4 chains x 1000 draws; these fits keep 4 x 500 by default).
+SAMPLING = "sampling: {chains: 4, warmup: 500, draws: %d, engine: pymc, path: %s, seed: %d}\n"
 GATE = "gate: {ess_bulk_min: 100, ess_tail_min: 100}\n"
 
 
 def line_output(folder, name, group_sd, groups=10, per_group=3, seed=1, form="non_centred",
-                path="auto", extra=""):
+                path="auto", draws=500, extra=""):
     """Spec + CSV: hourly output of production lines, normal outcome, one factor ``line``.
 
     ``path: plain`` samples the group effects per row (no exact integration), so
@@ -33,7 +33,7 @@ def line_output(folder, name, group_sd, groups=10, per_group=3, seed=1, form="no
     spec = folder / f"{name}.yaml"
     spec.write_text(f"format: hierwork/1\nname: {name}\ndata: {name}.csv\noutcome: {{column: output}}\n"
                     f"groups:\n  line: {{column: line, parameterisation: {form}}}\n"
-                    + SAMPLING % (path, seed) + GATE + extra)
+                    + SAMPLING % (draws, path, seed) + GATE + extra)
     return spec
 
 

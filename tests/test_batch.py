@@ -86,7 +86,7 @@ def test_centred_funnel_is_rescued_by_the_remedies_and_attempts_are_kept(tmp_pat
     # does not cure it, switching to non-centred does. The per-row path keeps the
     # group effects in the sampler (the exact collapsed path has no funnel).
     spec = line_output(tmp_path, "funnel", group_sd=0.1, seed=7, form="centred", path="plain",
-                       extra="remedies:\n  steps: [{target_accept: 0.95}, parameterisation]\n")
+                       draws=1000, extra="remedies:\n  steps: [{target_accept: 0.95}, parameterisation]\n")
     out = tmp_path / "batch"
     result = hierwork("batch", spec, "--out", out)
     assert result.returncode == 0, result.stdout + result.stderr
