@@ -137,7 +137,8 @@ def test_collapsed_equals_dense_marginal_one_factor(cols, known_sd):
     np.testing.assert_allclose(got, ref, rtol=1e-9)
 
 
-def test_collapsed_equals_dense_marginal_nesting_chain():
+@pytest.mark.parametrize("known_sd", [False, True])
+def test_collapsed_equals_dense_marginal_nesting_chain(known_sd):
     """Plot within farm within region: intercepts at all levels, a farm slope."""
     rng = np.random.default_rng(5)
     n_region, n_farm, n_plot, n = 3, 7, 16, 120
@@ -146,18 +147,20 @@ def test_collapsed_equals_dense_marginal_nesting_chain():
     plot = np.r_[np.arange(n_plot), rng.integers(0, n_plot, n - n_plot)]
     X = np.column_stack([np.ones(n), rng.normal(size=n)])
     y = X @ [3.0, 0.5] + rng.normal(size=n)
-    st_ = cell_stats(y, X, plot)
+    sd = rng.uniform(0.3, 1.5, n) if known_sd else None
+    st_ = cell_stats(y, X, plot, known_sd=sd)
     levels = [Level((0,), n_plot, plot_farm), Level((0, 1), n_farm, farm_region),
               Level((0,), n_region)]
     b, s = rng.normal(size=2), 0.6
     chols = [_random_chol(rng, 1), _random_chol(rng, 2), _random_chol(rng, 1)]
     farm, region = plot_farm[plot], farm_region[plot_farm[plot]]
     ref = _dense_marginal(plot, X, y, b, [((0,), plot), ((0, 1), farm), ((0,), region)], chols,
-                          np.full(n, s**2), region)
-    got = _pt_eval(lambda b_, L0, L1, L2, s_: collapsed_group_loglik(st_, levels, b_, [L0, L1, L2],
-                                                                     s_), b, *chols, s)
+                          sd**2 if known_sd else np.full(n, s**2), region)
+    sigma = [] if known_sd else [s]
+    got = _pt_eval(lambda b_, L0, L1, L2, *s_: collapsed_group_loglik(st_, levels, b_, [L0, L1, L2],
+                                                                      *s_), b, *chols, *sigma)
     np.testing.assert_allclose(got, ref, rtol=1e-9)
-    np.testing.assert_allclose(collapsed_loglik(st_, levels, b, chols, s, xp=np), ref.sum(),
+    np.testing.assert_allclose(collapsed_loglik(st_, levels, b, chols, *sigma, xp=np), ref.sum(),
                                rtol=1e-9)
 
 
