@@ -41,9 +41,12 @@ class CheckReport:
     engine_reason: str
 
     def text(self) -> str:
-        return describe(self.plan, {"path": f"{self.path} ({self.path_reason})",
+        from .batch.variants import describe_variants
+
+        text = describe(self.plan, {"path": f"{self.path} ({self.path_reason})",
                                     "engine": f"{self.engine} ({self.engine_reason})"},
                         collapsed=self.path == "collapsed")
+        return "\n".join([text, *describe_variants(self.plan.spec)])
 
     def to_dict(self) -> dict:
         return plan_as_dict(self.plan, {"path": self.path, "path_reason": self.path_reason,

@@ -20,11 +20,13 @@ its value is NaN and its rows do not enter that fit.
 """
 from __future__ import annotations
 
+import warnings
+
 import numpy as np
 import pandas as pd
 import scipy.sparse as sp
 from scipy import optimize, special
-from scipy.sparse.linalg import spsolve
+from scipy.sparse.linalg import MatrixRankWarning, spsolve
 
 from .plan import ModelPlan
 
@@ -117,8 +119,9 @@ def _at_boundary(plan: ModelPlan, f) -> np.ndarray:
 def fit_glm(plan: ModelPlan, design: sp.csr_matrix, keep: np.ndarray, max_iter: int = 100) -> np.ndarray:
     """Maximum-likelihood coefficients of ``plan``'s family on ``design`` rows ``keep``.
 
-    Iteratively reweighted least squares with a tiny ridge (1e-9 of the mean
-    diagonal) so that columns without data stay finite rather than singular.
+    Iteratively reweighted least squares; the normal equations are solved
+    exactly, with a tiny ridge (1e-9 of the mean diagonal) only when they are
+    singular, so that columns without data stay finite.
     """
     D = design[keep]
     y = plan.y[keep]
@@ -164,12 +167,17 @@ def fit_glm(plan: ModelPlan, design: sp.csr_matrix, keep: np.ndarray, max_iter: 
 
 
 def _weighted_solve(D, z, w) -> np.ndarray:
+    """Solve the weighted normal equations exactly; a tiny ridge only if they are singular."""
     Wd = D.multiply(w[:, None]).tocsr()
     A = (D.T @ Wd).tocsc()
-    ridge = 1e-9 * max(float(A.diagonal().mean()), 1e-12)
-    A = A + ridge * sp.identity(A.shape[0], format="csc")
     rhs = D.T @ (w * z)
-    return np.atleast_1d(spsolve(A, rhs))
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", MatrixRankWarning)
+        coef = np.atleast_1d(spsolve(A, rhs))
+    if np.all(np.isfinite(coef)):
+        return coef
+    ridge = 1e-9 * max(float(A.diagonal().mean()), 1e-12)
+    return np.atleast_1d(spsolve(A + ridge * sp.identity(A.shape[0], format="csc"), rhs))
 
 
 def _nb_alpha(y, mu) -> float:

@@ -25,9 +25,9 @@ covariance):
   Carlin 1995, Biometrika 82, 479-488); any further centred factor samples its
   offsets directly, ``u_j ~ N(0, A S A')``.
 
-``build_model(plan, centre=False)`` gives the same model without centring,
-which prior predictive simulation uses (every variable then has a proper
-generative prior).
+``build_model(plan, centre=False)`` gives the same model without centring
+and with every factor non-centred, which prior predictive simulation uses
+(every variable then has a proper generative prior).
 """
 from __future__ import annotations
 
@@ -153,7 +153,9 @@ def build_model(plan: ModelPlan, centre: bool = True, reduced: bool = False) -> 
     ----------
     plan : ModelPlan
     centre : bool
-        Sample with predictors centred (exact change of variables; default).
+        Sample with predictors centred (exact change of variables) and each
+        factor in its planned form (default). ``False`` gives the generative
+        form, uncentred and every factor non-centred, for prior simulation.
     reduced : bool
         Normal outcomes only: evaluate the likelihood from per-cell sufficient
         statistics (exact, O(cells) per gradient) instead of per row.
@@ -175,18 +177,21 @@ def build_model(plan: ModelPlan, centre: bool = True, reduced: bool = False) -> 
             chol_c = pt.dot(A, chol)
             dims = (f.name, f"{f.name}__term")
             shape = (f.n_groups, len(f.varying))
-            if f.parameterisation == "centred" and not anchored:
+            form = f.parameterisation if centre else "non_centred"  # generative form for prior simulation
+            if form == "centred" and not anchored:
                 mean = pt.broadcast_to(b[list(f.varying_cols)], shape)  # data units: b_T + W gamma
                 if shift is not None:
                     mean = pt.set_subtensor(mean[:, 0], mean[:, 0] + shift)
                 mean = pt.dot(mean, A.T)  # at centred x
-                coef = _centred(f"{f.name}__coef", mean, sd, chol_c, dims)
+                start = np.zeros(shape)
+                start[:, 0] = plan.priors["intercept"].params.get("mu", 0.0)
+                coef = _centred(f"{f.name}__coef", mean, sd, chol_c, dims, start)
                 effect_c = coef - mean
                 parts.append((f, pt.dot(coef, to_data), None))
                 anchored.update(f.varying_cols)
             else:
-                if f.parameterisation == "centred":
-                    effect_c = _centred(f"{f.name}__u", pt.zeros(shape), sd, chol_c, dims)
+                if form == "centred":
+                    effect_c = _centred(f"{f.name}__u", pt.zeros(shape), sd, chol_c, dims, np.zeros(shape))
                 else:
                     effect_c = pt.dot(pm.Normal(f"{f.name}__z", 0.0, 1.0, dims=dims), chol_c.T)
                 parts.append((f, pt.dot(effect_c, to_data), shift))
@@ -206,10 +211,22 @@ def build_model(plan: ModelPlan, centre: bool = True, reduced: bool = False) -> 
     return model
 
 
-def _centred(name, mean, sd, chol, dims):
+def _centred(name, mean, sd, chol, dims, start):
+    """Group values sampled directly: ``N(mean_j, chol chol')`` for every group ``j``.
+
+    With several terms the density is written out with one triangular solve
+    for all groups (a batched multivariate normal solves once per group, which
+    is many times slower); the values are then a flat variable plus that
+    density, which is the same distribution.
+    """
     if len(pm.modelcontext(None).coords[dims[1]]) == 1:
         return pm.Normal(name, mu=mean, sigma=sd, dims=dims)
-    return pm.MvNormal(name, mu=mean, chol=chol, dims=dims)
+    value = pm.Flat(name, dims=dims, initval=start)
+    z = pt.linalg.solve_triangular(chol, (value - mean).T, lower=True)
+    J, q = start.shape
+    pm.Potential(f"{name}_density", -0.5 * pt.sum(z ** 2) - J * pt.sum(pt.log(pt.diag(chol)))
+                 - 0.5 * J * q * np.log(2 * np.pi))
+    return value
 
 
 def likelihood(plan: ModelPlan, eta, extras) -> None:

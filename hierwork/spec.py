@@ -291,6 +291,8 @@ def _apply_overrides(document: YamlDocument, overrides: dict) -> YamlDocument:
     content = copy.deepcopy(document.content) if isinstance(document.content, dict) else {}
     for dotted, value in overrides.items():
         parts = str(dotted).split(".")
+        if parts[0] == "priors" and len(parts) > 2:
+            parts = ["priors", ".".join(parts[1:])]  # prior names contain dots: farm.nitrogen.sd
         node = content
         for i, part in enumerate(parts[:-1]):
             if part not in node or node[part] is None:

@@ -152,8 +152,7 @@ SLOPE_FORMULA = "weight_g ~ day + diet2 + diet3 + diet4"   # diet enters the chi
 def slope_run(chick_data):
     folder, _ = chick_data
     return _fit(folder, "chick_slopes",
-                "{column: chick, varying: [intercept, day], predictors: [diet2, diet3, diet4], "
-                "parameterisation: non_centred}")
+                "{column: chick, varying: [intercept, day], predictors: [diet2, diet3, diet4]}")
 
 
 @pytest.fixture(scope="session")
