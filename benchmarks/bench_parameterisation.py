@@ -1,0 +1,143 @@
+"""Does ``parameterisation: auto`` sample as well as the better fixed choice?
+
+Three Poisson problems (plain path, every group effect sampled), simulated with
+a fixed seed:
+
+* sparse: 150 groups with 1-3 rows each and a small between-group SD (0.15):
+  the data say little about each group, the centred form has a funnel;
+* data-rich: 5 groups with 400 rows each and a between-group SD of 0.5: each
+  group is pinned down by its own data, the non-centred form is the awkward one;
+* data-rich with 12 groups of 150 rows (the same, above auto's few-groups limit
+  of 10 groups, under which auto always takes the non-centred form).
+
+Each is fitted through ``hierwork.fit`` with the factor's parameterisation set
+to ``centred``, ``non_centred`` and ``auto``. Reported per fit: wall time of the
+whole fit, sampling time, the smallest bulk ESS over all parameters checked by
+the gate (``diagnostics.json``; includes every group effect), bulk ESS per
+second of sampling, divergent transitions, and for ``auto`` the ratio of its
+ESS per second to the better fixed choice's. Each fit is repeated ``REPEATS``
+times in alternating order and the fastest repeat is kept (sampling time
+includes PyMC's compile, which is cached after the first fit of a model).
+
+``auto`` resolves to one of the two fixed forms, so with the same seed it
+draws exactly the same numbers as that form: its ESS equals the chosen form's
+and the ratio differs from 1 only by timing noise. What the benchmark shows is
+whether auto picks the better form on each problem.
+
+Run:  python benchmarks/bench_parameterisation.py [--out FOLDER] [--markdown FILE]
+"""
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import platform
+import tempfile
+import time
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import yaml
+
+import hierwork
+
+SEED = 20261202
+SAMPLING = {"sampling.chains": 2, "sampling.cores": 2, "sampling.warmup": 500, "sampling.draws": 500,
+            "sampling.seed": SEED}
+CHOICES = ("centred", "non_centred", "auto")
+REPEATS = 2
+
+
+def simulate(kind: str, rng) -> pd.DataFrame:
+    """Counts per row: ``log mu = 1 + 0.3 x + u_group``, ``u ~ N(0, sd)``."""
+    sizes, sd = {"sparse": (rng.integers(1, 4, size=150), 0.15), "data_rich": (np.full(5, 400), 0.5),
+                 "data_rich_12": (np.full(12, 150), 0.5)}[kind]
+    group = np.repeat(np.arange(len(sizes)), sizes)
+    u = rng.normal(0, sd, len(sizes))
+    x = rng.normal(0, 1, len(group))
+    counts = rng.poisson(np.exp(1.0 + 0.3 * x + u[group]))
+    return pd.DataFrame({"depot": [f"d{g:03d}" for g in group], "x": np.round(x, 4), "parcels_lost": counts})
+
+
+def write_spec(folder: Path, kind: str) -> Path:
+    simulate(kind, np.random.default_rng(SEED)).to_csv(folder / f"{kind}.csv", index=False)
+    doc = {"format": "hierwork/1", "name": f"bench_{kind}", "data": f"{kind}.csv",
+           "outcome": {"column": "parcels_lost", "family": "poisson"}, "predictors": ["x"],
+           "groups": {"depot": {"column": "depot"}}}
+    path = folder / f"{kind}.yaml"
+    path.write_text(yaml.safe_dump(doc), encoding="utf-8")
+    return path
+
+
+def measure(spec: Path, choice: str, out: Path) -> dict:
+    t0 = time.perf_counter()
+    run = hierwork.fit(spec, out=out, force=True, progress=False,
+                       overrides={**SAMPLING, "groups.depot.parameterisation": choice})
+    wall = time.perf_counter() - t0
+    checks = {c["name"]: c for c in run.diagnostics["checks"]}
+    plan = json.loads((run.path / "plan.json").read_text())
+    sampling = float(run.provenance["sampling_seconds"])
+    ess = float(checks["ess_bulk"]["value"])
+    return {"choice": choice, "resolved": plan["factors"][0]["parameterisation"], "wall_s": wall, "sampling_s": sampling,
+            "min_ess_bulk": ess, "ess_per_s": ess / sampling,
+            "min_ess_bulk_summary": float(run.summary["ess_bulk"].min()),
+            "divergences": int(checks["divergences"]["value"]), "passed": run.passed}
+
+
+def fastest(repeats: list) -> dict:
+    """The repeat with the shortest sampling time (least disturbed by other load; common practice).
+
+    The seed is fixed, so every repeat draws the same numbers: only the times differ.
+    """
+    assert len({r["min_ess_bulk"] for r in repeats}) == 1, "repeats with the same seed gave different draws"
+    return min(repeats, key=lambda r: r["sampling_s"])
+
+
+def machine() -> str:
+    cpu = next((line.split(":", 1)[1].strip() for line in Path("/proc/cpuinfo").read_text().splitlines()
+                if line.startswith("model name")), platform.processor())
+    load = os.getloadavg()
+    return (f"nproc {os.cpu_count()}, CPU {cpu}, load average {load[0]:.1f} / {load[1]:.1f} / {load[2]:.1f} "
+            f"(1/5/15 min) at the end of the run, Python {platform.python_version()}, "
+            f"hierwork {hierwork.__version__}")
+
+
+def table(results: dict) -> str:
+    lines = ["| problem | parameterisation | chosen | wall s | sampling s | min bulk ESS | bulk ESS/s "
+             "| divergences | auto / best fixed (ESS/s) |", "|---|---|---|---:|---:|---:|---:|---:|---:|"]
+    for kind, rows in results.items():
+        best = max((r for r in rows if r["choice"] != "auto"), key=lambda r: r["ess_per_s"])
+        for r in rows:
+            ratio = f"{r['ess_per_s'] / best['ess_per_s']:.2f} (best: {best['choice']})" if r["choice"] == "auto" else ""
+            lines.append(f"| {kind} | {r['choice']} | {r['resolved']} | {r['wall_s']:.1f} | {r['sampling_s']:.1f} "
+                         f"| {r['min_ess_bulk']:.0f} | {r['ess_per_s']:.1f} | {r['divergences']} | {ratio} |")
+    return "\n".join(lines)
+
+
+def main() -> None:
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("--out", type=Path, help="keep the run folders here (default: a temporary folder)")
+    parser.add_argument("--markdown", type=Path, help="also write the table and machine line to this file")
+    args = parser.parse_args()
+    with tempfile.TemporaryDirectory() as tmp:
+        root = args.out or Path(tmp)
+        root.mkdir(parents=True, exist_ok=True)
+        results = {}
+        for kind in ("sparse", "data_rich", "data_rich_12"):
+            spec = write_spec(root, kind)
+            runs = {choice: [] for choice in CHOICES}
+            for rep in range(REPEATS):  # alternate the order so no choice always runs first (cold caches)
+                for choice in (CHOICES if rep % 2 == 0 else CHOICES[::-1]):
+                    runs[choice].append(measure(spec, choice, root / f"{kind}_{choice}"))
+            results[kind] = [fastest(runs[choice]) for choice in CHOICES]
+            for r in results[kind]:
+                print(json.dumps({"problem": kind, **r}))
+    text = f"{table(results)}\n\nMachine: {machine()}\n"
+    print(text)
+    if args.markdown:
+        args.markdown.write_text(text, encoding="utf-8")
+
+
+if __name__ == "__main__":
+    main()
