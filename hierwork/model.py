@@ -109,7 +109,7 @@ def family_extras(plan: ModelPlan) -> dict:
     """Residual SD, Student-t degrees of freedom, negative-binomial dispersion, as the family needs."""
     extras = {}
     for name in ("residual_sd", "nu", "dispersion"):
-        if name in plan.priors and not (name == "residual_sd" and plan.known_sd is not None):
+        if name in plan.priors:
             extras[name] = prior_rv(name, [plan.priors[name]])
     return extras
 

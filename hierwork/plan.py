@@ -161,7 +161,7 @@ def make_plan(spec: Spec, dataset: Dataset) -> ModelPlan:
             sd = float(np.std(fp.W[:, k], ddof=1))
             stats[col] = (float(np.mean(fp.W[:, k])), sd if sd > 0 else 1.0)
         gp_stats.append((fp.name, fp.varying, stats))
-    resolved = priors.default_priors(out.family, terms, x_stats, centre, spread, gp_stats)
+    resolved = priors.default_priors(out.family, terms, x_stats, centre, spread, gp_stats, known_sd is not None)
     priors.check_lkj_keys(spec)
     resolved = priors.apply_user_priors(resolved, spec, categorical_terms)
     return ModelPlan(spec=spec, family=out.family, y=y, trials=trials, exposure=exposure, known_sd=known_sd,

@@ -65,7 +65,7 @@ def link_scale_outcome(family: str, y: np.ndarray, trials, exposure) -> tuple[fl
     return float(np.log(max(rate, 1e-3))), 1.0
 
 
-def default_priors(family, terms, x_stats, y_centre, y_spread, factors) -> dict:
+def default_priors(family, terms, x_stats, y_centre, y_spread, factors, known_sd: bool = False) -> dict:
     """Default priors for every parameter of a plan.
 
     Parameters
@@ -78,6 +78,8 @@ def default_priors(family, terms, x_stats, y_centre, y_spread, factors) -> dict:
     y_centre, y_spread : float
         From :func:`link_scale_outcome`.
     factors : sequence of (name, varying terms, group-level predictor stats dict)
+    known_sd : bool
+        Normal outcome with known per-row SDs: no residual SD to put a prior on.
 
     Returns
     -------
@@ -95,7 +97,7 @@ def default_priors(family, terms, x_stats, y_centre, y_spread, factors) -> dict:
         mean, sd, kind = x_stats[term]
         scale = 2.5 * y_spread / (sd if kind == "numeric" else 1.0)
         out[term] = Prior("normal", {"mu": 0.0, "sigma": scale}, True, "real")
-    if family in ("normal", "student_t"):
+    if family == "student_t" or (family == "normal" and not known_sd):
         out["residual_sd"] = Prior("half_normal", {"sigma": y_spread}, True, "positive")
     if family == "student_t":
         out["nu"] = Prior("gamma", {"alpha": 2.0, "beta": 0.1}, True, "positive")
