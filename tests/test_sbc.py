@@ -53,10 +53,12 @@ N_REPLICATES = 100
 N_RANKS = 99                 # posterior draws kept per replicate: ranks 0..99
 N_BINS = 10
 FAMILY_WISE_LEVEL = 0.01
-THIN = 2
+THIN = 2                     # keep every 2nd draw: autocorrelated draws skew ranks (Talts et al. 2018, §4)
 SETTINGS = {"chains": 1, "draws": N_RANKS * THIN, "tune": 200, "progress_bar": False, "target_accept": 0.95}
 
 GROUPS, ROWS = 8, 5
+# SBC holds for any proper prior; these are set (not the data-scaled defaults) so the plan does not
+# depend on the placeholder outcome, and kept moderate so simulated counts and proportions stay plausible.
 LINK_PRIORS = {"intercept": {"normal": {"mu": 0, "sigma": 1}}, "x": {"normal": {"mu": 0, "sigma": 0.5}},
                "g.sd": {"half_normal": {"sigma": 0.7}}}
 COUNT_PRIORS = {**LINK_PRIORS, "intercept": {"normal": {"mu": 1, "sigma": 0.5}}}
@@ -65,7 +67,8 @@ EXTRA = {"nu": {"gamma": {"alpha": 2, "beta": 0.1}}, "dispersion": {"gamma": {"a
 COMMON = [("b", "intercept"), ("b", "x"), ("g__sd", "intercept"),
           ("g__effect", ("g0", "intercept")), ("g__effect", ("g1", "intercept"))]
 
-# family -> (parameterisation, priors, checked parameters)
+# family -> (parameterisation, priors, checked parameters); normal and binomial exercise the centred form
+# (hierarchical centring with the intercept prior as a potential), the others the non-centred one.
 CASES = {
     "normal": ("centred", SCALE_PRIORS, COMMON + [("residual_sd", None)]),
     "student_t": ("non_centred", {**SCALE_PRIORS, "nu": EXTRA["nu"]}, COMMON + [("residual_sd", None), ("nu", None)]),
