@@ -19,11 +19,14 @@ Parameterisations of a factor's effects (``L`` the Cholesky factor of their
 covariance):
 
 * non-centred: ``z ~ N(0, I)``, effects ``= z (A L)'``;
-* centred: the first centred factor in parents-first order carries the
-  population values: its group coefficients ``c_j ~ N(A (b_T + W_j gamma), A S A')``
-  replace ``b_T + u_j`` in every row (hierarchical centring, Gelfand, Sahu and
-  Carlin 1995, Biometrika 82, 479-488); any further centred factor samples its
-  offsets directly, ``u_j ~ N(0, A S A')``.
+* centred, the only factor of the model: its group coefficients
+  ``c_j ~ N(A (b_T + W_j gamma), A S A')`` replace ``b_T + u_j`` in every row
+  (hierarchical centring, Gelfand, Sahu and Carlin 1995, Biometrika 82,
+  479-488);
+* centred, one of several factors: the offsets are sampled directly,
+  ``u_j ~ N(0, A S A')`` (letting one of several crossed or nested factors carry
+  the population values would tie its coefficients to the other factors'
+  effects, a ridge the sampler crawls along).
 
 ``build_model(plan, centre=False)`` gives the same model without centring
 and with every factor non-centred, which prior predictive simulation uses
@@ -178,7 +181,7 @@ def build_model(plan: ModelPlan, centre: bool = True, reduced: bool = False) -> 
             dims = (f.name, f"{f.name}__term")
             shape = (f.n_groups, len(f.varying))
             form = f.parameterisation if centre else "non_centred"  # generative form for prior simulation
-            if form == "centred" and not anchored:
+            if form == "centred" and len(plan.factors) == 1:
                 mean = pt.broadcast_to(b[list(f.varying_cols)], shape)  # data units: b_T + W gamma
                 if shift is not None:
                     mean = pt.set_subtensor(mean[:, 0], mean[:, 0] + shift)

@@ -6,15 +6,18 @@ variance ``v_j`` of its own mean (``sigma^2 / n_j`` for normal outcomes, the
 inverse Fisher information for the others, ``1 / sum(1/se^2)`` with known
 SDs). The data are informative about group ``j`` when ``kappa_j = tau^2 / v_j``
 exceeds 1 (the likelihood is sharper than the population distribution). If the
-median ``kappa_j`` is at least 1 the factor is sampled **centred**, otherwise
+median ``kappa_j`` (at the low end of ``tau``, below) is at least 1 the factor is
+sampled **centred**, otherwise
 **non-centred**; when no between-group variation is detectable (``tau`` = 0 by
 the method of moments) the factor is non-centred. A varying slope of ``x`` is
 judged the same way, with each group's own least-squares slope, its sampling
 variance ``sigma^2 / S_xx,j`` (``S_xx,j`` the within-group sum of squares of
 ``x``; 0 makes the group uninformative) and the moments estimate of the slopes'
-SD; the factor is centred only if every varying term is data-rich. A factor
-with fewer than 10 groups is always non-centred: its SD is poorly identified,
-so its posterior reaches towards 0, where the centred form funnels.
+SD; the factor is centred only if every varying term is data-rich. Because the
+posterior of ``tau`` reaches well below its estimate when groups are few, the
+median ``kappa_j`` is judged at the lower 5% bound of ``tau^2`` (the estimate
+times ``chi2_{0.05, J-1} / (J-1)``, treating it as a one-way ANOVA variance
+component): 3 groups need about 20 times more data per group than many groups.
 
 Why: the centred form mixes well when each group is pinned down by its own data
 and poorly (a funnel) when the population distribution dominates; the
@@ -26,10 +29,6 @@ for hierarchical models", arXiv:1312.0906).
 from __future__ import annotations
 
 import numpy as np
-
-# Below this many groups the group SD's posterior is wide whatever each group's
-# data say (common practice; seen on the crossed machines data, 3 and 6 groups).
-FEW_GROUPS = 10
 
 
 def working_response(family, y, trials, exposure, known_sd):
@@ -103,14 +102,28 @@ def choose(requested: str, judged: list) -> tuple[str, str]:
     if requested != "auto":
         return requested, "set in the spec"
     n_groups = len(judged[0][2])
-    if n_groups < FEW_GROUPS:
-        return "non_centred", (f"only {n_groups} groups: their SD is poorly identified and its posterior "
-                               "reaches towards 0, where the centred form funnels: non-centred")
     for term, tau2, _ in judged:
         if tau2 <= 0:
             return "non_centred", f"no between-group variation in {term} detectable by moments: non-centred"
-    medians = [(float(np.median(kappa)), term) for term, _, kappa in judged]
+    low = tau2_lower_factor(n_groups)
+    medians = [(float(np.median(kappa)) * low, term) for term, _, kappa in judged]
     med, term = min(medians)
     if med >= 1:
-        return "centred", f"median tau^2/v_j = {med:.3g} >= 1 for {term} (data-rich groups): centred"
-    return "non_centred", f"median tau^2/v_j = {med:.3g} < 1 for {term} (data-poor groups): non-centred"
+        return "centred", (f"median tau^2/v_j = {med:.3g} >= 1 for {term} at the low end of tau "
+                           f"({n_groups} groups; data-rich): centred")
+    return "non_centred", (f"median tau^2/v_j = {med:.3g} < 1 for {term} at the low end of tau "
+                           f"({n_groups} groups; data-poor or few groups): non-centred")
+
+
+def tau2_lower_factor(n_groups: int) -> float:
+    """Lower 5% bound of ``tau^2`` relative to its moments estimate, ``chi2_{0.05, J-1} / (J-1)``.
+
+    Treats the between-group variance estimate as scaled chi-square with J - 1
+    degrees of freedom (the classical one-way ANOVA result), so that few groups,
+    whose SD posterior reaches towards 0, need much more data per group before
+    the centred form is chosen.
+    """
+    from scipy.stats import chi2
+
+    dof = max(n_groups - 1, 1)
+    return float(chi2.ppf(0.05, dof) / dof)
