@@ -67,10 +67,13 @@ EXTRA = {"nu": {"gamma": {"alpha": 2, "beta": 0.1}}, "dispersion": {"gamma": {"a
 COMMON = [("b", "intercept"), ("b", "x"), ("g__sd", "intercept"),
           ("g__effect", ("g0", "intercept")), ("g__effect", ("g1", "intercept"))]
 
-# family -> (parameterisation, priors, checked parameters); normal and binomial exercise the centred form
-# (hierarchical centring with the intercept prior as a potential), the others the non-centred one.
+# family -> (parameterisation, priors, checked parameters); binomial (10 trials x 5 rows per group, data-rich
+# enough) exercises the centred form (hierarchical centring, intercept prior as a potential), the others the
+# non-centred one that auto takes for these 8 small groups. Normal outcomes with the centred form on this
+# data-poor design fail here (b[intercept] p = 0.0005 at seed 1000, 59 divergences; the non-centred form on the
+# same replicates passes): the funnel that auto exists to avoid (Betancourt and Girolami 2013).
 CASES = {
-    "normal": ("centred", SCALE_PRIORS, COMMON + [("residual_sd", None)]),
+    "normal": ("non_centred", SCALE_PRIORS, COMMON + [("residual_sd", None)]),
     "student_t": ("non_centred", {**SCALE_PRIORS, "nu": EXTRA["nu"]}, COMMON + [("residual_sd", None), ("nu", None)]),
     "bernoulli": ("non_centred", LINK_PRIORS, COMMON),
     "binomial": ("centred", LINK_PRIORS, COMMON),
