@@ -17,6 +17,18 @@ for _name in ("pymc", "pytensor", "arviz"):
 os.environ.setdefault("MPLBACKEND", "Agg")
 
 
+@pytest.fixture(scope="session", autouse=True)
+def demo_data():
+    """The demo data, as ``hierwork demo`` makes it (a fresh clone has none; several tests read it)."""
+    from hierwork.api import demo_specs_folder
+    from hierwork.demo import DEMO_DATASETS, make_demo_data
+
+    folder = demo_specs_folder().parent / "demo" / "data"
+    if not all((folder / f"{name}.csv").is_file() for name in DEMO_DATASETS):
+        make_demo_data(folder)
+    return folder
+
+
 def write_spec(folder: Path, text: str, name: str = "spec.yaml") -> Path:
     """Write a spec file (dedented) and return its path."""
     import textwrap
