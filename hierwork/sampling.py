@@ -13,8 +13,9 @@ import time
 import arviz as az
 import pymc as pm
 
-# Above this many rows x columns, nutpie's faster gradient loop outweighs its
-# longer compile (measured on the benchmarks in benchmarks/; see RESULTS.md).
+# Above this many likelihood terms x columns, nutpie's faster gradient loop is
+# expected to outweigh its longer compile. A starting point, not yet tuned by
+# measurement (benchmarks/bench_scale.py can compare the engines).
 NUTPIE_FROM_CELLS = 200_000
 
 

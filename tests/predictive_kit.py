@@ -5,6 +5,9 @@ import functools
 from pathlib import Path
 
 
+import numpy as np
+import pandas as pd
+
 import hierwork
 from hierwork import predictive
 from hierwork.api import check, sample_posterior
@@ -19,6 +22,15 @@ def write(folder: Path, text: str) -> Path:
     path = folder / "spec.yaml"
     path.write_text(text.replace("DATA", str(DATA)).replace("DEMO", str(DEMO)), encoding="utf-8")
     return path
+
+
+def simulate_sites(path: Path, *, seed: int, n_sites: int, per_site: int, mu: float, site_sd: float,
+                   resid_sd: float, label: str) -> None:
+    """Write ``site, y`` simulated from a one-way normal model (``label`` formats site numbers)."""
+    rng = np.random.default_rng(seed)
+    site = np.repeat(np.arange(n_sites), per_site)
+    y = mu + rng.normal(0, site_sd, n_sites)[site] + rng.normal(0, resid_sd, site.size)
+    pd.DataFrame({"site": [label.format(j) for j in site], "y": y}).to_csv(path, index=False)
 
 
 def sample(spec_path, overrides=None):

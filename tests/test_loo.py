@@ -51,10 +51,8 @@ def test_partial_pooling_beats_no_pooling_on_small_groups(tmp_path):
     # SD 0.71 > 0.5). Shrinkage then predicts better than separate means for more than 2 groups
     # (James and Stein 1961; Efron and Morris 1975, JASA 70, 311-319): partial pooling must beat
     # no pooling, and by more than 2 standard errors of the difference (dse).
-    rng = np.random.default_rng(2)
-    site = np.repeat(np.arange(40), 2)
-    y = 3.0 + rng.normal(0, 0.5, 40)[site] + rng.normal(0, 1.0, site.size)
-    pd.DataFrame({"site": [f"s{j:02d}" for j in site], "y": y}).to_csv(tmp_path / "small_groups.csv", index=False)
+    kit.simulate_sites(tmp_path / "small_groups.csv", seed=2, n_sites=40, per_site=2, mu=3.0, site_sd=0.5,
+                       resid_sd=1.0, label="s{:02d}")
     plan, idata = kit.sample(kit.write(tmp_path, SMALL_GROUPS.replace("DATA", str(tmp_path))))
     files = kit.predictive.augment(idata, plan, plan.spec, 5)
     table = pd.read_csv(io.StringIO(files["loo_compare.csv"])).set_index("model")

@@ -103,10 +103,8 @@ def test_calibration_near_nominal_on_correct_model(tmp_path):
     # Data simulated from the model (mu 10, site SD 2, residual SD 3, 30 sites x 10 rows). In-sample
     # coverage exceeds nominal only by about p_loo / n (~0.1 / 300 per row); a two-sided binomial
     # test at level 0.001 per interval (scipy.stats.binomtest) then fails by chance rarely.
-    rng = np.random.default_rng(4)
-    site = np.repeat(np.arange(30), 10)
-    y = 10 + rng.normal(0, 2, 30)[site] + rng.normal(0, 3, site.size)
-    pd.DataFrame({"site": [f"p{j}" for j in site], "y": y}).to_csv(tmp_path / "simulated.csv", index=False)
+    kit.simulate_sites(tmp_path / "simulated.csv", seed=4, n_sites=30, per_site=10, mu=10, site_sd=2,
+                       resid_sd=3, label="p{}")
     plan, idata = kit.sample(kit.write(tmp_path, SIMULATED.replace("DATA", str(tmp_path))))
     files = predictive.augment(idata, plan, plan.spec, 9)
     report = json.loads(files["calibration.json"])
