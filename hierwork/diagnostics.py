@@ -23,6 +23,8 @@ from dataclasses import asdict, dataclass, field
 import arviz as az
 import numpy as np
 
+from .convergence import diagnose
+
 _ADVICE = {
     "r_hat": "chains disagree: run longer (more warmup and draws), or switch the parameterisation "
              "of the factor named in the worst parameter",
@@ -81,26 +83,35 @@ def _num(v) -> str:
     return f"{v:.4g}" if isinstance(v, float) else str(v)
 
 
-def _worst(ds, pick) -> tuple[float, str | None]:
-    """Worst value over all elements of all variables, with its label ``var[coord, ...]``."""
-    best_val, best_name = None, None
-    for name, da in ds.data_vars.items():
+def _worst(post) -> dict:
+    """Worst R-hat (max), bulk and tail ESS (min) over every element of every variable.
+
+    Returns ``{"r_hat" | "ess_bulk" | "ess_tail": (value, label)}`` with labels
+    ``var[coord, ...]``; elements whose value is NaN (constants, such as the unit
+    diagonal of a correlation matrix) are skipped.
+    """
+    worst = {"r_hat": (None, None), "ess_bulk": (None, None), "ess_tail": (None, None)}
+    for name, da in post.data_vars.items():
+        da = da.transpose("chain", "draw", ...)
         values = np.asarray(da.values, dtype=float)
-        finite = np.isfinite(values)
-        if not finite.any():
-            continue
-        flat = np.where(finite, values, np.nan)
-        idx = np.nanargmax(flat) if pick == "max" else np.nanargmin(flat)
-        val = float(flat.flat[idx])
-        if best_val is None or (val > best_val if pick == "max" else val < best_val):
-            best_val, best_name = val, _label(name, da, np.unravel_index(idx, values.shape))
-    return (best_val if best_val is not None else float("nan")), best_name
+        shape = values.shape[2:]
+        results = diagnose(values.reshape(values.shape[:2] + (-1,)))
+        for key, result in zip(worst, results):
+            if not np.isfinite(result).any():
+                continue
+            idx = int(np.nanargmax(result) if key == "r_hat" else np.nanargmin(result))
+            val, best = float(result[idx]), worst[key][0]
+            if best is None or (val > best if key == "r_hat" else val < best):
+                worst[key] = (val, _label(name, da, np.unravel_index(idx, shape)))
+    return {k: (float("nan") if v is None else v, at) for k, (v, at) in worst.items()}
 
 
 def _label(name, da, index) -> str:
-    if not da.dims:
+    """``name[coord, ...]`` of one element of a posterior variable (chain and draw left out)."""
+    dims = [d for d in da.dims if d not in ("chain", "draw")]
+    if not dims:
         return str(name)
-    parts = [str(da.coords[d].values[i]) if d in da.coords else str(i) for d, i in zip(da.dims, index)]
+    parts = [str(da.coords[d].values[i]) if d in da.coords else str(i) for d, i in zip(dims, index)]
     return f"{name}[{', '.join(parts)}]"
 
 
@@ -122,9 +133,9 @@ def evaluate_gate(idata, gate: dict, max_treedepth: int) -> GateResult:
     """
     post = idata.posterior  # constant elements (correlation diagonals) give NaN and are skipped
     n_chains, n_draws = post.sizes["chain"], post.sizes["draw"]
-    rhat_val, rhat_at = _worst(az.rhat(post), "max")
-    bulk_val, bulk_at = _worst(az.ess(post, method="bulk"), "min")
-    tail_val, tail_at = _worst(az.ess(post, method="tail"), "min")
+    worst = _worst(post)
+    (rhat_val, rhat_at), (bulk_val, bulk_at), (tail_val, tail_at) = (worst[k] for k in
+                                                                      ("r_hat", "ess_bulk", "ess_tail"))
     stats = idata.sample_stats
     divergences = int(stats["diverging"].sum()) if "diverging" in stats else 0
     bfmi = np.atleast_1d(az.bfmi(idata)) if "energy" in stats else np.array([np.nan])

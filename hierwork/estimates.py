@@ -8,10 +8,10 @@ Parameter names match the spec's ``priors`` keys (``farm.sd``, ``farm.nitrogen.s
 """
 from __future__ import annotations
 
-import arviz as az
 import numpy as np
 import pandas as pd
 
+from .convergence import diagnose
 from .plan import FactorPlan, ModelPlan
 
 
@@ -102,14 +102,13 @@ def parameter_draws(idata, plan: ModelPlan) -> dict:
 def population_summary(idata, plan: ModelPlan, interval: float) -> pd.DataFrame:
     """The run folder's ``summary.csv``: mean, sd, central interval, ESS and R-hat per parameter."""
     lo_q, hi_q = (1 - interval) / 2, 1 - (1 - interval) / 2
-    rows = []
-    for name, draws in parameter_draws(idata, plan).items():
-        arr = np.asarray(draws, dtype=float)
-        rows.append({"parameter": name, "mean": arr.mean(), "sd": arr.std(ddof=1),
-                     "lower": np.quantile(arr, lo_q), "upper": np.quantile(arr, hi_q),
-                     "ess_bulk": float(az.ess(arr, method="bulk")), "ess_tail": float(az.ess(arr, method="tail")),
-                     "r_hat": float(az.rhat(arr))})
-    return pd.DataFrame(rows)
+    named = parameter_draws(idata, plan)
+    stacked = np.stack([np.asarray(d, dtype=float) for d in named.values()], axis=-1)  # (chain, draw, K)
+    r_hat, ess_bulk, ess_tail = diagnose(stacked)
+    flat = stacked.reshape(-1, stacked.shape[-1])
+    return pd.DataFrame({"parameter": list(named), "mean": flat.mean(axis=0), "sd": flat.std(axis=0, ddof=1),
+                         "lower": np.quantile(flat, lo_q, axis=0), "upper": np.quantile(flat, hi_q, axis=0),
+                         "ess_bulk": ess_bulk, "ess_tail": ess_tail, "r_hat": r_hat})
 
 
 def pooling_factors(idata, plan: ModelPlan) -> pd.DataFrame:
