@@ -11,6 +11,7 @@ from importlib import metadata
 from pathlib import Path
 
 import numpy as np
+import pandas as pd
 import yaml
 
 from . import __version__, predictive, runs
@@ -180,7 +181,8 @@ def fit(spec, out, force: bool = False, overrides: dict | None = None, progress:
         "passed": gate.passed,
     }
     with runs.staged_folder(out, force) as tmp:
-        idata.to_netcdf(str(tmp / "posterior.nc"), engine="h5netcdf")
+        # Uncompressed: zlib saves about 5% on posterior draws and costs ten times the write time.
+        idata.to_netcdf(str(tmp / "posterior.nc"), engine="h5netcdf", compress=False)
         runs.write_json(tmp / "diagnostics.json", gate.to_dict())
         table.to_csv(tmp / "group_estimates.csv", index=False)
         summary.to_csv(tmp / "summary.csv", index=False)
@@ -188,8 +190,11 @@ def fit(spec, out, force: bool = False, overrides: dict | None = None, progress:
         (tmp / "spec.yaml").write_text(_spec_as_run(spec), encoding="utf-8")
         runs.write_json(tmp / "provenance.json", provenance)
         runs.write_json(tmp / "plan.json", report.to_dict())
-        for name, text in extra_files.items():
-            (tmp / name).write_text(text, encoding="utf-8")
+        for name, content in extra_files.items():
+            if isinstance(content, pd.DataFrame):
+                runs.write_csv(tmp / name, content)
+            else:
+                (tmp / name).write_text(content, encoding="utf-8")
         write_report(tmp)
     return runs.Run.load(out)
 

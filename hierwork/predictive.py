@@ -14,14 +14,16 @@ Memory budget: at most ``MAX_CELLS`` = 2e7 numbers (160 MB as float64) of
 draws x rows are kept for any one array (posterior predictive draws, pointwise
 log-likelihood); the work itself runs in row chunks of ``CHUNK_CELLS`` numbers.
 Above the budget the posterior predictive is thinned to fit (every k-th draw of
-each chain) and per-row summaries are written to ``predictive_rows.csv``;
+each chain) and per-row summaries are written to ``predictive_rows.csv``.
+Per-row summaries and calibration use every draw up to ``SUMMARY_CELLS`` = 2e8
+draws x rows and evenly thinned draws above it (at least 100; the number is in
+``calibration.json`` as ``draws_used``);
 row-level LOO is then replaced by leave-one-group-out on the top factor when
 the collapsed path stored ``log_likelihood["y_by_<factor>"]``, or skipped with
 the reason in ``loo.json``.
 """
 from __future__ import annotations
 
-import io
 import json
 import math
 from dataclasses import dataclass
@@ -35,6 +37,10 @@ from .plan import ModelPlan
 
 #: Largest draws x rows array kept in memory or on disk (numbers).
 MAX_CELLS = 20_000_000
+#: Draws x rows summarised per row (mean, SD, intervals, calibration); above it the
+#: summaries use evenly thinned draws, at least ``MIN_SUMMARY_DRAWS`` of them.
+SUMMARY_CELLS = 200_000_000
+MIN_SUMMARY_DRAWS = 100
 #: Draws x rows handled at once while streaming over rows.
 CHUNK_CELLS = 2_000_000
 #: Nominal levels of the central intervals whose coverage ``calibration.json`` reports.
@@ -62,6 +68,14 @@ class Draws:
     @property
     def n(self) -> int:
         return self.b.shape[0]
+
+    def subset(self, index: np.ndarray) -> Draws:
+        """The draws at ``index`` (flat positions), as one chain unless all are kept."""
+        if len(index) == self.n:
+            return self
+        return Draws(self.b[index], {k: v[index] for k, v in self.effects.items()},
+                     {k: v[index] for k, v in self.gammas.items()},
+                     {k: v[index] for k, v in self.extras.items()}, (1, len(index)))
 
 
 def draws_of(group, plan_factors) -> Draws:
@@ -193,7 +207,8 @@ class PosteriorPredictive:
 
     ``replicated`` (chains, kept draws, n) and ``thin`` (every ``thin``-th draw
     kept); ``log_lik`` (chains, draws, n) or None above the budget; ``rows`` a
-    DataFrame of per-row summaries (mean, sd, and bounds of each central interval).
+    DataFrame of per-row summaries (mean, sd, and bounds of each central interval)
+    over ``summary_draws`` draws.
     """
 
     replicated: np.ndarray
@@ -201,6 +216,19 @@ class PosteriorPredictive:
     log_lik: np.ndarray | None
     rows: pd.DataFrame
     levels: list
+    summary_draws: int
+
+
+def summary_thin(n_draws: int, per_chain: int, n_rows: int) -> int:
+    """Every how many draws of each chain the per-row summaries use (1 = all of them).
+
+    Within :data:`SUMMARY_CELLS` draws x rows, but at least :data:`MIN_SUMMARY_DRAWS`
+    draws in all (or every draw if there are fewer).
+    """
+    chains = max(1, n_draws // max(per_chain, 1))
+    wanted = math.ceil(n_draws * n_rows / SUMMARY_CELLS)
+    floor = max(1, per_chain // math.ceil(MIN_SUMMARY_DRAWS / chains))
+    return max(1, min(wanted, floor))
 
 
 def posterior_predictive(draws: Draws, rows: Rows, family: str, y, rng: np.random.Generator,
@@ -208,30 +236,37 @@ def posterior_predictive(draws: Draws, rows: Rows, family: str, y, rng: np.rando
     """Replicate the outcome for every draw and row, streaming over row chunks.
 
     Keeps at most :data:`MAX_CELLS` numbers per array (see the module docstring).
+    Per-row summaries use every :func:`summary_thin`-th draw of each chain; their
+    interval bounds are type-6 quantiles (Hyndman and Fan 1996), whose central
+    interval holds a new exchangeable draw with probability close to nominal
+    whatever the number of draws (type 7 would fall short with few draws).
     """
     D, n = draws.n, rows.n
     chains, per_chain = draws.shape
-    thin = max(1, math.ceil(D * n / MAX_CELLS))
-    keep = np.arange(D).reshape(chains, per_chain)[:, ::thin]
-    replicated = np.empty(keep.shape + (n,))
+    step = summary_thin(D, per_chain, n)
+    thin = step * math.ceil(math.ceil(D * n / MAX_CELLS) / step)  # stored draws are among the summarised
+    used = np.arange(D).reshape(chains, per_chain)[:, ::step]
+    keep = np.isin(used.ravel(), np.arange(D).reshape(chains, per_chain)[:, ::thin].ravel())
+    sub = draws.subset(used.ravel())
+    replicated = np.empty((chains, -(-per_chain // thin), n))
     keep_ll = log_lik and y is not None and D * n <= MAX_CELLS
     ll = np.empty((D, n)) if keep_ll else None
     qs, levels = _quantile_levels(interval)
     summary = {"mean": np.empty(n), "sd": np.empty(n), "q": np.empty((len(qs), n))}
-    for sl in _chunks(D, n):
-        eta = linear_predictor(draws, rows, sl)
-        rep = simulate(family, rng, eta, draws, rows, sl)
-        replicated[..., sl] = rep[keep.ravel()].reshape(keep.shape + (-1,))
+    for sl in _chunks(sub.n, n):
+        eta = linear_predictor(sub, rows, sl)
+        rep = simulate(family, rng, eta, sub, rows, sl)
+        replicated[..., sl] = rep[keep].reshape(replicated.shape[:2] + (-1,))
         summary["mean"][sl] = rep.mean(axis=0)
         summary["sd"][sl] = rep.std(axis=0, ddof=1)
-        summary["q"][:, sl] = np.quantile(rep, qs, axis=0)
+        summary["q"][:, sl] = np.quantile(rep, qs, axis=0, method="weibull")
         if keep_ll:
-            ll[:, sl] = log_density(family, y[sl], eta, draws, rows, sl)
+            ll[:, sl] = log_density(family, y[sl], eta, sub, rows, sl)
     table = {"pred_mean": summary["mean"], "pred_sd": summary["sd"]}
     for k, lv in enumerate(levels):
         table[f"lower_{lv:g}"], table[f"upper_{lv:g}"] = summary["q"][2 * k], summary["q"][2 * k + 1]
     return PosteriorPredictive(replicated, thin, None if ll is None else ll.reshape(chains, per_chain, n),
-                               pd.DataFrame(table), levels)
+                               pd.DataFrame(table), levels, sub.n)
 
 
 def calibration(y, table: pd.DataFrame, factors) -> dict:
@@ -291,8 +326,8 @@ def augment(idata, plan: ModelPlan, spec, seed: int) -> dict:
     -------
     dict
         File name -> text: ``calibration.json``, ``loo.json`` and, with
-        ``estimates.compare_pooling``, ``loo_compare.csv``; ``predictive_rows.csv``
-        when the draws were thinned.
+        ``estimates.compare_pooling``, ``loo_compare.csv``; and file name ->
+        DataFrame: ``predictive_rows.csv`` when the draws were thinned.
     """
     from . import loo
 
@@ -315,11 +350,10 @@ def augment(idata, plan: ModelPlan, spec, seed: int) -> dict:
             getattr(idata, name).update(ds)
         else:
             idata.add_groups({name: ds})
-    files = {"calibration.json": json.dumps(calibration(plan.y, pp.rows, plan.factors), indent=2) + "\n"}
+    report = {**calibration(plan.y, pp.rows, plan.factors), "draws_used": pp.summary_draws}
+    files = {"calibration.json": json.dumps(report, indent=2) + "\n"}
     if pp.thin > 1:
-        buf = io.StringIO()
-        pp.rows.to_csv(buf, index_label="row")
-        files["predictive_rows.csv"] = buf.getvalue()
+        files["predictive_rows.csv"] = pp.rows.rename_axis("row").reset_index()
     files.update(loo.pooling_comparison(idata, plan, spec, seed))
     return files
 

@@ -78,6 +78,18 @@ def _jsonable(value):
     raise TypeError(f"not JSON serialisable: {type(value).__name__}")
 
 
+def write_csv(path: Path, frame: pd.DataFrame) -> None:
+    """A table as CSV, without the index; Arrow's writer, several times faster than pandas' on millions of rows.
+
+    Missing values are written as empty fields, as pandas writes them.
+    """
+    import pyarrow as pa
+    from pyarrow import csv
+
+    csv.write_csv(pa.Table.from_pandas(frame, preserve_index=False), str(path),
+                  csv.WriteOptions(quoting_style="needed"))
+
+
 def write_atomic(path: Path, text: str) -> None:
     """Replace a single file atomically (write a sibling, then rename)."""
     tmp = path.with_name(f".{path.name}.tmp-{uuid.uuid4().hex[:8]}")

@@ -10,11 +10,9 @@
 """
 from __future__ import annotations
 
-import io
 import json
 
 import numpy as np
-import pandas as pd
 import pymc as pm
 import pytest
 from scipy import stats
@@ -147,7 +145,7 @@ def test_over_budget_thins_and_falls_back_to_group_loo(rail, monkeypatch):
     assert idata.posterior_predictive.attrs["thin"] == 6
     assert idata.posterior_predictive["y"].shape == (2, 50, plan.n)
     assert "log_likelihood" not in idata.groups() or "y" not in idata.log_likelihood
-    rows = pd.read_csv(io.StringIO(files["predictive_rows.csv"]))
+    rows = files["predictive_rows.csv"]
     assert len(rows) == plan.n and {"pred_mean", "lower_0.94", "upper_0.94"} <= set(rows.columns)
     loo = json.loads(files["loo.json"])
     assert loo["unit"].startswith("rail") and loo["models"]["partial_pooling"]["n"] == 6
@@ -166,3 +164,30 @@ def test_prior_predictive_flags_absurd_priors(tmp_path):
     summary = predictive.prior_predictive(logit, 1, draws=200)
     assert summary["share_probability_extreme"] > predictive.EXTREME_P_SHARE
     assert any("below 1% or above 99%" in w for w in summary["warnings"])
+
+
+def test_over_work_budget_summaries_use_thinned_draws(rail, monkeypatch):
+    plan, idata = rail
+    monkeypatch.setattr(predictive, "SUMMARY_CELLS", 18 * 150)  # 2,000 draws x 18 rows > 2,700
+    monkeypatch.setattr(predictive, "MAX_CELLS", 18 * 40)
+    idata = idata.copy()
+    files = predictive.augment(idata, plan, plan.spec, 1)
+    per_chain = idata.posterior.sizes["draw"]
+    step = predictive.summary_thin(2 * per_chain, per_chain, plan.n)
+    report = json.loads(files["calibration.json"])
+    assert report["draws_used"] == 2 * len(range(0, per_chain, step)) >= predictive.MIN_SUMMARY_DRAWS
+    thin = idata.posterior_predictive.attrs["thin"]
+    assert thin % step == 0 and idata.posterior_predictive["y"].shape == (2, len(range(0, per_chain, thin)), plan.n)
+    cover = {lv["nominal"]: lv["coverage"] for lv in report["levels"]}
+    assert cover[0.94] >= 0.8 and 0.2 <= cover[0.5] <= 0.9
+
+
+def test_type6_intervals_hold_nominal_coverage_with_few_draws():
+    # Closed form (order statistics of exchangeable draws): a new draw falls between the i-th and
+    # j-th of m draws with probability (j - i) / (m + 1). Type-6 bounds at 3% and 97% of m = 100
+    # draws sit at positions 3.03 and 97.97, so coverage is about 94.9/101 = 0.940; R's default
+    # type 7 (positions 3.97, 97.03) would give about 0.921.
+    rng = np.random.default_rng(11)
+    reps, new = rng.standard_normal((100, 200_000)), rng.standard_normal(200_000)
+    lo, hi = np.quantile(reps, [0.03, 0.97], axis=0, method="weibull")
+    assert abs(np.mean((new >= lo) & (new <= hi)) - 94.94 / 101) < 0.003
