@@ -6,6 +6,7 @@ delivery against distance, depots vary in their level):
 * S:     85 depots, ~1,000 rows
 * M:  2,000 depots, ~200,000 rows
 * L: 20,000 depots, ~2,000,000 rows (unequal group sizes throughout)
+* M/10: M's 2,000 depots with 20,000 rows (with M: what 10x the rows costs at fixed groups)
 
 and fits each, in the same run and with the same priors, chains and draws, by
 
@@ -44,7 +45,8 @@ from pathlib import Path
 
 import numpy as np
 
-SIZES = {"S": (85, 1_000), "M": (2_000, 200_000), "L": (20_000, 2_000_000)}
+SIZES = {"S": (85, 1_000), "M": (2_000, 200_000), "L": (20_000, 2_000_000),
+         "M/10": (2_000, 20_000)}  # M's groups with a tenth of its rows: the rows-scaling check
 SEED = 20261202
 CHAINS, WARMUP, DRAWS = 2, 1000, 1000
 METHODS = ("hierwork", "pymc-nc", "nutpie-nc", "nutpie-c", "hierwork-cold")
@@ -56,7 +58,7 @@ def make_problem(size: str, seed: int = SEED):
     import pandas as pd
 
     n_groups, n_rows = SIZES[size]
-    rng = np.random.default_rng([seed, ord(size)])
+    rng = np.random.default_rng([seed, *map(ord, size)])
     weights = rng.lognormal(0.0, 1.0, n_groups)
     counts = 1 + rng.multinomial(n_rows - n_groups, weights / weights.sum())
     depot = np.repeat(np.arange(n_groups), counts)
@@ -75,7 +77,7 @@ def write_problem(size: str, folder: Path) -> Path:
 
     frame, _ = make_problem(size)
     frame.to_csv(folder / "deliveries.csv", index=False)
-    spec = {"format": "hierwork/1", "name": f"bench-{size}", "data": "deliveries.csv",
+    spec = {"format": "hierwork/1", "name": f"bench-{size.replace('/', '-')}", "data": "deliveries.csv",
             "outcome": {"column": "minutes_late", "family": "normal"},
             "predictors": ["distance_km"], "groups": {"depot": {"column": "depot"}},
             "sampling": {"chains": CHAINS, "warmup": WARMUP, "draws": DRAWS, "seed": SEED}}
@@ -230,6 +232,15 @@ def table(results: list[dict]) -> str:
     return "\n".join(lines)
 
 
+def scaling(results: list[dict]) -> str:
+    """Ratios of hierwork's wall time: M over M/10 (10x rows, fixed groups) and L over M."""
+    wall = {r["size"]: r["wall"] for r in results if r["method"] == "hierwork" and "skipped" not in r}
+    lines = [f"\nhierwork wall time, {big} / {small} ({what}): {wall[big] / wall[small]:.2f}x"
+             for big, small, what in (("M", "M/10", "10x rows, same groups"), ("L", "M", "10x rows and groups"))
+             if big in wall and small in wall]
+    return "\n".join(lines)
+
+
 def main(argv=None) -> None:
     parser = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
     parser.add_argument("--sizes", nargs="+", default=["S"], choices=list(SIZES))
@@ -248,6 +259,7 @@ def main(argv=None) -> None:
             print(f"{size} {method}: {json.dumps(results[-1])}", file=sys.stderr, flush=True)
     text = f"Machine: {machine()}\nChains {CHAINS} x ({WARMUP} warmup + {DRAWS} draws), seed {SEED}.\n\n"
     text += table(results)
+    text += scaling(results)
     print(text)
     if args.markdown:
         args.markdown.write_text(text + "\n", encoding="utf-8")

@@ -22,7 +22,7 @@ from scipy import fft
 from scipy.fft import next_fast_len
 from scipy.special import ndtri
 
-__all__ = ["diagnose"]
+__all__ = ["diagnose", "ess_mean"]
 
 #: Offset of the rank back-transformation (Blom 1958), as in the paper.
 _BLOM = 3.0 / 8.0
@@ -157,20 +157,40 @@ def diagnose(draws) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
         NaN where a parameter has a non-finite draw or fewer than 4 draws
         (R-hat also: fewer than 2 chains, or no variation).
     """
+    out = _by_block(draws, _diagnose, 3)
+    if np.shape(draws)[0] < 2:
+        out[0] = np.nan
+    return out[0], out[1], out[2]
+
+
+def ess_mean(draws) -> np.ndarray:
+    """ESS of the mean (split chains, no rank normalisation), as ArviZ's ``ess(method="mean")``.
+
+    Parameters
+    ----------
+    draws : array (chains, draws, K)
+
+    Returns
+    -------
+    ndarray (K,)
+    """
+    return _by_block(draws, lambda x: _ess_of(_split(x))[None], 1)[0]
+
+
+def _by_block(draws, fn, rows: int) -> np.ndarray:
+    """(rows, K): ``fn`` over blocks of parameters with finite draws; NaN elsewhere or if under 4 draws."""
     draws = np.asarray(draws, dtype=float)
     chains, n_draws, k = draws.shape
-    out = np.full((3, k), np.nan)
+    out = np.full((rows, k), np.nan)
     if n_draws < 4:
-        return out[0], out[1], out[2]
+        return out
     width = max(1, _BLOCK_CELLS // max(1, chains * n_draws))
     for start in range(0, k, width):
         x = np.moveaxis(draws[:, :, start:start + width], 2, 0)
         ok = np.isfinite(x).all(axis=(1, 2))
         if ok.any():
-            out[:, start:start + width][:, ok] = _diagnose(x[ok])
-    if chains < 2:
-        out[0] = np.nan
-    return out[0], out[1], out[2]
+            out[:, start:start + width][:, ok] = fn(x[ok])
+    return out
 
 
 def _diagnose(x: np.ndarray) -> np.ndarray:

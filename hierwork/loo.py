@@ -37,6 +37,7 @@ import numpy as np
 import xarray as xr
 
 from . import predictive
+from .convergence import ess_mean
 from .plan import ModelPlan
 
 #: Pareto k above which a row's PSIS-LOO estimate is unreliable (Vehtari, Gelman and Gabry 2017).
@@ -138,7 +139,21 @@ def _loo_record(result) -> dict:
 def _loo(idata, var_name: str = "y"):
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")  # Pareto k warnings are counted in loo.json instead
-        return az.loo(idata, pointwise=True, var_name=var_name)
+        return az.loo(idata, pointwise=True, var_name=var_name, reff=relative_efficiency(idata.posterior))
+
+
+def relative_efficiency(posterior) -> float:
+    """Mean ESS of the mean over every posterior element, per draw: PSIS's ``r_eff``.
+
+    The number ArviZ's ``loo`` computes when not given one (one chain: 1), here
+    vectorised over parameters (:func:`hierwork.convergence.ess_mean`).
+    """
+    n_chains, n_draws = posterior.sizes["chain"], posterior.sizes["draw"]
+    if n_chains == 1:
+        return 1.0
+    values = [ess_mean(np.asarray(da.transpose("chain", "draw", ...).values, dtype=float)
+                       .reshape(n_chains, n_draws, -1)) for da in posterior.data_vars.values()]
+    return float(np.hstack(values).mean() / (n_chains * n_draws))
 
 
 def pooling_comparison(idata, plan: ModelPlan, spec, seed: int) -> dict:

@@ -15,7 +15,8 @@ import arviz as az
 import numpy as np
 import pytest
 
-from hierwork.convergence import diagnose
+from hierwork.convergence import diagnose, ess_mean
+from hierwork.loo import relative_efficiency
 
 
 def _ar1(rng, chains, draws, k, phi):
@@ -72,3 +73,23 @@ def test_flags_what_it_should():
     r_hat, bulk, tail = diagnose(x)
     assert r_hat[0] > 1.1
     assert bulk[1] < 100 and tail[1] < 100
+
+
+def test_ess_mean_and_relative_efficiency_match_arviz():
+    """``ess(method="mean")`` per element, and the r_eff ArviZ's ``loo`` derives from it."""
+    rng = np.random.default_rng(5)
+    x = _ar1(rng, 3, 300, 6, 0.8)
+    x[:, :, 2] = 0.25  # constant: full draw count in both
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        ref = np.array([float(az.ess(x[:, :, j], method="mean")) for j in range(6)])
+    np.testing.assert_allclose(ess_mean(x), ref, rtol=1e-9)
+
+    idata = az.from_dict(posterior={"a": x[:, :, :2], "b": x[:, :, 2:]},
+                         log_likelihood={"y": rng.normal(size=(3, 300, 4))})
+    ours = az.loo(idata, reff=relative_efficiency(idata.posterior))
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        theirs = az.loo(idata)
+    assert ours.elpd_loo == pytest.approx(theirs.elpd_loo, rel=1e-12)
+    assert ours.p_loo == pytest.approx(theirs.p_loo, rel=1e-9)
