@@ -8,8 +8,10 @@ folder loaded back), ``run_demo`` (``hierwork demo``), and
 __version__ = "0.1.0"
 
 from . import blas as _blas  # noqa: E402  (before PyTensor is imported)
+from . import jitcache as _jitcache  # noqa: E402
 
 _blas.configure()
+_jitcache.import_arviz_cached()
 
 from .api import CheckReport, check, fit, run_demo  # noqa: E402
 from .errors import DataError, HierworkError, RunFolderError, SpecError  # noqa: E402
