@@ -44,6 +44,14 @@ def fit_run(folder: Path, spec_path, overrides=None):
     return hierwork.fit(spec_path, out=folder / "run", overrides={**SMALL, **(overrides or {})}, progress=False)
 
 
+#: rail (Devore 2000, Example 10.10; tests/data/SOURCES.md): 18 rows, 6 rails, normal outcome.
+RAIL = """format: hierwork/1
+name: rail
+data: DATA/rail.csv
+outcome: {column: travel_ns}
+groups: {rail: {column: rail}}
+"""
+
 CBPP = """format: hierwork/1
 name: cbpp
 data: DATA/cbpp.csv

@@ -70,19 +70,11 @@ def test_pareto_k_counts_stored_per_model(cbpp):
         assert (record["pareto_k_above_0.7"] > 0) == (record["pareto_k_max"] > loo.PARETO_K_BAD)
 
 
-RAIL = """format: hierwork/1
-name: rail
-data: DATA/rail.csv
-outcome: {column: travel_ns}
-groups: {rail: {column: rail}}
-"""
-
-
 @pytest.fixture(scope="module")
 def rail(tmp_path_factory):
     from hierwork.api import check
 
-    spec_path = kit.write(tmp_path_factory.mktemp("rail"), RAIL)
+    spec_path = kit.write(tmp_path_factory.mktemp("rail"), kit.RAIL)
     return check(spec_path, kit.SMALL).plan
 
 

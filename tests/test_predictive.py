@@ -115,17 +115,9 @@ def test_calibration_near_nominal_on_correct_model(tmp_path):
     np.testing.assert_array_equal(idata.observed_data["y"].values, plan.y)
 
 
-RAIL = """format: hierwork/1
-name: rail
-data: DATA/rail.csv
-outcome: {column: travel_ns}
-groups: {rail: {column: rail}}
-"""
-
-
 @pytest.fixture(scope="module")
 def rail(tmp_path_factory):
-    return kit.sample(kit.write(tmp_path_factory.mktemp("rail"), RAIL))
+    return kit.sample(kit.write(tmp_path_factory.mktemp("rail"), kit.RAIL))
 
 
 def test_rail_calibration_sanity(rail):
@@ -154,10 +146,10 @@ def test_over_budget_thins_and_falls_back_to_group_loo(rail, monkeypatch):
 def test_prior_predictive_flags_absurd_priors(tmp_path):
     # Thresholds are common practice (module constants); a normal(0, 1e5) intercept on travel
     # times of 28-100 ns is absurd, the data-scaled defaults are not.
-    fine = check(kit.write(tmp_path, RAIL)).plan
+    fine = check(kit.write(tmp_path, kit.RAIL)).plan
     summary = predictive.prior_predictive(fine, 1, draws=200)
     assert summary["warnings"] == [] and summary["share_far_outside"] <= predictive.FAR_SHARE
-    wide = check(kit.write(tmp_path, RAIL + "priors: {intercept: {normal: {mu: 0, sigma: 100000}}}\n")).plan
+    wide = check(kit.write(tmp_path, kit.RAIL + "priors: {intercept: {normal: {mu: 0, sigma: 100000}}}\n")).plan
     text = predictive.prior_predictive_text(wide, 1, draws=200)
     assert "warning: the priors imply implausible values" in text
     logit = check(kit.write(tmp_path, kit.CBPP + "priors: {intercept: {normal: {mu: 0, sigma: 20}}}\n")).plan
