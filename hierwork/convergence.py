@@ -113,8 +113,8 @@ def _ess(x: np.ndarray) -> np.ndarray:
     kept = stop.argmax(axis=1)  # first stop, or ``bound`` if none
     monotone = np.minimum.accumulate(pairs[:, : max(bound, 1)], axis=1)
     cum = np.concatenate([np.zeros((k, 1)), np.cumsum(monotone, axis=1)], axis=1)
-    summed = cum[np.arange(k), kept]  # sum of the monotone pair sums Q'_0 .. Q'_{L-1}
     rows = np.arange(k)
+    summed = cum[rows, kept]  # sum of the monotone pair sums Q'_0 .. Q'_{L-1}
     last_even = rho[rows, np.minimum(2 * kept, n - 1)]
     last_sum = pairs[rows, np.minimum(kept, n_pairs - 1)]
     scanned_ok = (kept >= 1) & (last_sum >= 0)  # last computed pair stored by the scan

@@ -134,8 +134,7 @@ def evaluate_gate(idata, gate: dict, max_treedepth: int) -> GateResult:
     post = idata.posterior  # constant elements (correlation diagonals) give NaN and are skipped
     n_chains, n_draws = post.sizes["chain"], post.sizes["draw"]
     worst = _worst(post)
-    (rhat_val, rhat_at), (bulk_val, bulk_at), (tail_val, tail_at) = (worst[k] for k in
-                                                                      ("r_hat", "ess_bulk", "ess_tail"))
+    (rhat_val, rhat_at), (bulk_val, bulk_at), (tail_val, tail_at) = worst.values()
     stats = idata.sample_stats
     divergences = int(stats["diverging"].sum()) if "diverging" in stats else 0
     bfmi = np.atleast_1d(az.bfmi(idata)) if "energy" in stats else np.array([np.nan])
