@@ -1,4 +1,4 @@
 """``python -m hierwork`` runs the command line."""
-from .cli import main
+from hierwork.cli import main
 
 raise SystemExit(main())

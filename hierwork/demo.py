@@ -44,8 +44,8 @@ TRUE_PARAMETERS = {
     "wheat": {
         "intercept": 4.2,            # t/ha at 0 kg N, conventional tillage, 0 % soil carbon
         "nitrogen_kg": 0.012,        # t/ha per kg N
-        "tillage[reduced]": -0.25,
-        "tillage[none]": -0.55,
+        "tillage=reduced": -0.25,
+        "tillage=none": -0.55,
         "soil_carbon": 0.35,         # t/ha per % soil organic carbon (farm level)
         "region.sd": 0.25,
         "farm.sd": 0.35,             # farm intercepts around their region
@@ -54,8 +54,8 @@ TRUE_PARAMETERS = {
     },
     "line_defects": {
         "intercept": np.log(0.2),    # log defects per hour on a day shift
-        "shift[evening]": 0.15,
-        "shift[night]": 0.35,
+        "shift=evening": 0.15,
+        "shift=night": 0.35,
         "line.sd": 0.40,
         "dispersion_shape": 8.0,     # gamma-Poisson shape (negative binomial alpha)
     },
@@ -106,7 +106,7 @@ def _wheat(rng: np.random.Generator) -> tuple[pd.DataFrame, pd.DataFrame]:
     nitrogen = rng.choice(_NITROGEN_LEVELS, n)
     tillage = rng.choice(_TILLAGE, n, p=[0.5, 0.3, 0.2])
     tillage_effect = np.select([tillage == "reduced", tillage == "none"],
-                               [p["tillage[reduced]"], p["tillage[none]"]], 0.0)
+                               [p["tillage=reduced"], p["tillage=none"]], 0.0)
     mean = farm_intercept[farm_idx] + farm_slope[farm_idx] * nitrogen + tillage_effect
     yield_t_ha = rng.normal(mean, p["residual_sd"])
     data = pd.DataFrame({
@@ -137,7 +137,7 @@ def _line_defects(rng: np.random.Generator) -> tuple[pd.DataFrame, pd.DataFrame]
     shift = rng.choice(_SHIFTS, n, p=[0.45, 0.35, 0.20])
     hours_run = np.round(rng.uniform(4.0, 12.0, n), 1)
     shift_effect = np.select([shift == "evening", shift == "night"],
-                             [p["shift[evening]"], p["shift[night]"]], 0.0)
+                             [p["shift=evening"], p["shift=night"]], 0.0)
     rate = np.exp(line_log_rate[line_idx] + shift_effect) * hours_run
     # Gamma-Poisson mixture: mean `rate`, variance rate + rate^2 / shape.
     shape = p["dispersion_shape"]

@@ -8,6 +8,8 @@ from pathlib import Path
 
 import pytest
 
+import hierwork.runtime  # noqa: F401  (BLAS for PyTensor before any test imports it)
+
 DATA = Path(__file__).parent / "data"
 
 warnings.filterwarnings("ignore", message=".*ArviZ is undergoing a major refactor.*")
@@ -20,7 +22,7 @@ os.environ.setdefault("MPLBACKEND", "Agg")
 @pytest.fixture(scope="session", autouse=True)
 def demo_data():
     """The demo data, as ``hierwork demo`` makes it (a fresh clone has none; several tests read it)."""
-    from hierwork.api import demo_specs_folder
+    from hierwork.pipeline import demo_specs_folder
     from hierwork.demo import DEMO_DATASETS, make_demo_data
 
     folder = demo_specs_folder().parent / "demo" / "data"

@@ -9,8 +9,8 @@ import numpy as np
 import pandas as pd
 
 import hierwork
-from hierwork import predictive
-from hierwork.api import check, sample_posterior
+from hierwork.results import loo, predictive
+from hierwork.pipeline import check, sample_posterior
 
 DATA = Path(__file__).parent / "data"
 DEMO = Path(__file__).parent.parent / "demo" / "data"
@@ -37,6 +37,12 @@ def sample(spec_path, overrides=None):
     """Plan and posterior of a spec by the path ``check`` chooses (no run folder)."""
     report = check(spec_path, {**SMALL, **(overrides or {})})
     return report.plan, sample_posterior(report, progress=False)
+
+
+def augment(idata, plan, seed):
+    """What ``fit`` adds after sampling: predictive groups, calibration and the LOO files."""
+    files = predictive.augment(idata, plan, seed, plan.spec.interval)
+    return {**files, **loo.pooling_comparison(idata, plan, plan.spec, seed)}
 
 
 def fit_run(folder: Path, spec_path, overrides=None):
@@ -67,5 +73,4 @@ def cbpp(folder: str):
     """cbpp (Lesnoff et al. 2004; tests/data/SOURCES.md), binomial by herd, plain path, augmented with
     the pooling comparison: (plan, idata, files). Cached for the whole test session."""
     plan, idata = sample(write(Path(folder), CBPP))
-    files = predictive.augment(idata, plan, plan.spec, plan.spec.sampling["seed"])
-    return plan, idata, files
+    return plan, idata, augment(idata, plan, plan.spec.sampling["seed"])

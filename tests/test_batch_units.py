@@ -11,8 +11,9 @@ from hierwork.batch import child, summary
 from hierwork.batch.progress import duration, eta_seconds
 from hierwork.batch.jobs import load_jobs
 from hierwork.batch.queue import Queue
-from hierwork.batch.remedies import DEFAULT_POLICY, Policy, Step, next_remedy, parse_policy
-from hierwork.batch.variants import describe_variants, expand_variants, parse_variants
+from hierwork.batch.remedies import next_remedy
+from hierwork.declare.remedies import DEFAULT_POLICY, Policy, Step, parse_policy
+from hierwork.declare.variants import describe_variants, expand_variants, parse_variants
 from hierwork.errors import HierworkError, SpecError
 
 
@@ -300,7 +301,7 @@ def test_summary_escapes_user_strings_and_lists_attempts(tmp_path):
 
 # ---------------------------------------------------------------- spec keys
 def test_spec_accepts_variants_and_remedies_and_expands_them(tmp_path):
-    from hierwork.spec import load_spec
+    from hierwork.declare.spec import load_spec
 
     path = write_spec(tmp_path, "crop", "variants: {sweep: {sampling.draws: [300, 600]}}\n"
                                         "remedies: {max_attempts: 2}\n")
@@ -310,7 +311,7 @@ def test_spec_accepts_variants_and_remedies_and_expands_them(tmp_path):
 
 
 def test_spec_names_file_line_and_key_of_a_bad_remedies_value(tmp_path):
-    from hierwork.spec import load_spec
+    from hierwork.declare.spec import load_spec
 
     path = write_spec(tmp_path, "crop", "remedies: {max_attempts: 0}\n")
     with pytest.raises(SpecError, match=re.escape(

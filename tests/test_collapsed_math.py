@@ -15,10 +15,10 @@ import pytensor.tensor as pt
 import pytest
 from scipy import integrate, stats
 
-from hierwork import suffstats
-from hierwork.collapsed import (Level, collapsed_group_loglik, collapsed_loglik, draw_effects,
+from hierwork.model import cells as suffstats
+from hierwork.model.marginal import (Level, collapsed_group_loglik, collapsed_loglik, draw_effects,
                                 reduced_loglik)
-from hierwork.suffstats import cell_index, cell_stats
+from hierwork.model.cells import cell_index, cell_stats
 
 DATA = Path(__file__).parent / "data"
 

@@ -88,7 +88,7 @@ def test_report_and_compare_commands(run_root, tmp_path):
     done = _cli("report", passing)
     assert done.returncode == 0, done.stderr
     assert (passing / "report.html").is_file() and (passing / "summary.md").is_file()
-    assert done.stdout.splitlines()[-1] == "Gate passed: all 5 convergence checks met their limits."
+    assert done.stdout.splitlines()[-1] == "Gate passed: all 6 convergence checks met their limits."
     done = _cli("report", failing)
     assert done.returncode == 3  # contracts.md: fitted but the gate failed
     assert "do not use these estimates" in done.stdout

@@ -15,8 +15,8 @@ import arviz as az
 import numpy as np
 import pytest
 
-from hierwork.convergence import diagnose, ess_mean
-from hierwork.loo import relative_efficiency
+from hierwork.inference.convergence import diagnose, ess_mean
+from hierwork.results.loo import relative_efficiency
 
 
 def _ar1(rng, chains, draws, k, phi):

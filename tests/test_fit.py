@@ -14,6 +14,7 @@ import pytest
 
 import hierwork
 from hierwork.cli import main
+from test_report_fixture import Page
 
 RAIL = Path(__file__).parent / "data" / "rail.csv"
 SPEC = f"""
@@ -91,7 +92,10 @@ def test_gate_failure_exits_3_and_marks_every_output(rail_run, tmp_path, capsys)
     assert diag["passed"] is False
     failed = [c for c in diag["checks"] if not c["passed"]]
     assert [c["name"] for c in failed] == ["ess_bulk"] and failed[0]["worst_parameter"]
-    assert "NOT" in (out / "report.html").read_text() or "not" in (out / "report.html").read_text()
+    page = Page((out / "report.html").read_text())
+    verdict = page.find("section", id="verdict")[0]
+    assert "failed" in verdict[1]["class"] and "Gate failed (Bulk ESS): do not use these estimates." in verdict[2]
+    assert "GATE FAILED" in (out / "summary.md").read_text().upper()
     assert json.loads((out / "provenance.json").read_text())["passed"] is False
 
 

@@ -18,9 +18,9 @@ import yaml
 from scipy import stats
 
 import hierwork
-from hierwork import gaussian
-from hierwork.model import build_model
-from hierwork.sampling import run_sampler
+from hierwork.model import collapsed, paths, rowwise
+from hierwork.model.rowwise import build_model
+from hierwork.inference.sampling import run_sampler
 
 ROOT = Path(__file__).resolve().parents[1]
 DATA = Path(__file__).parent / "data"
@@ -42,7 +42,7 @@ def wheat_plan():
 
 @pytest.fixture(scope="module")
 def wheat_problem(wheat_plan):
-    return gaussian.collapsed_problem(wheat_plan)
+    return collapsed.collapsed_problem(wheat_plan)
 
 
 def _point(model, seed):
@@ -89,20 +89,20 @@ def _values(model, point):
 # --- path choice ----------------------------------------------------------------------
 
 def test_path_choice(wheat_plan, tmp_path):
-    assert gaussian.choose_path(wheat_plan)[0] == "collapsed"
-    assert [f.name for f in gaussian.nesting_chain(wheat_plan)] == ["farm", "region"]
-    assert gaussian.choose_path(hierwork.check(ROOT / "model_specs" / "depot_delays.yaml").plan)[0] == "plain"
+    assert paths.best_path(wheat_plan)[0] == "collapsed"
+    assert [f.name for f in paths.nesting_chain(wheat_plan)] == ["farm", "region"]
+    assert paths.best_path(hierwork.check(ROOT / "model_specs" / "depot_delays.yaml").plan)[0] == "plain"
     frame = pd.DataFrame({"y": np.arange(12.0), "a": list("uvw") * 4, "c": list("pq") * 6})
     crossed = _plan(tmp_path, frame, {"outcome": {"column": "y"}, "groups": {"a": {}, "c": {}}})
-    assert gaussian.choose_path(crossed)[0] == "reduced"
-    assert gaussian.nesting_chain(crossed) is None
+    assert paths.best_path(crossed)[0] == "reduced"
+    assert paths.nesting_chain(crossed) is None
 
 
 # --- collapsed model on a plan ---------------------------------------------------------
 
 def test_collapsed_model_equals_priors_plus_dense_marginal(wheat_plan, wheat_problem):
     """Same priors as the plain model; the likelihood is the dense Gaussian marginal."""
-    model = gaussian.build_collapsed_model(wheat_plan, wheat_problem)
+    model = collapsed.build_collapsed_model(wheat_plan, wheat_problem)
     plain = build_model(wheat_plan)
     point = _point(model, 1)
     shared = [plain[rv.name] for rv in model.free_RVs]
@@ -114,7 +114,7 @@ def test_collapsed_model_equals_priors_plus_dense_marginal(wheat_plan, wheat_pro
 
 
 def test_group_effect_draws_match_dense_conditional(wheat_plan, wheat_problem):
-    model = gaussian.build_collapsed_model(wheat_plan, wheat_problem)
+    model = collapsed.build_collapsed_model(wheat_plan, wheat_problem)
     point = _point(model, 2)
     b, s, gamma, fsd, fcorr, rsd, chols = _values(model, point)
     D = 4000
@@ -122,7 +122,7 @@ def test_group_effect_draws_match_dense_conditional(wheat_plan, wheat_problem):
     idata = az.from_dict(posterior={"b": rep(b), "residual_sd": rep(s), "farm__gamma": rep(gamma),
                                     "farm__sd": rep(fsd), "farm__corr": rep(fcorr),
                                     "region__sd": rep(rsd)})
-    gaussian.add_group_effects(idata, wheat_plan, 7, wheat_problem, group_log_likelihood=True)
+    collapsed.add_group_effects(idata, wheat_plan, 7, wheat_problem, group_log_likelihood=True)
     dense_ll, mu, cov, n_farm_cols = _dense_wheat(wheat_plan, b, gamma, chols, s)
     farm_eff = idata.posterior["farm__effect"]
     assert farm_eff.dims == ("chain", "draw", "farm", "farm__term")
@@ -153,12 +153,12 @@ def test_reduced_likelihood_equals_per_row_normal(tmp_path):
     mean = (va[fa.index] * plan.X[:, [0, 1]]).sum(1) + shift[fa.index] + vc[fc.index, 0]
     ref = stats.norm.logpdf(plan.y, mean, s).sum()
     with pm.Model() as m:
-        gaussian.reduced_normal_likelihood(plan, pt.as_tensor(b), [], [
+        rowwise.reduced_normal_likelihood(plan, pt.as_tensor(b), [], [
             (fa, pt.as_tensor(va), pt.as_tensor(shift)), (fc, pt.as_tensor(vc), None)], pt.as_tensor(s))
     np.testing.assert_allclose(m.compile_logp()({}), ref, rtol=1e-9)
     mean = plan.X @ b + (va[fa.index] * plan.X[:, [0, 1]]).sum(1) + vc[fc.index, 0]
     with pm.Model() as m:
-        gaussian.reduced_normal_likelihood(plan, pt.as_tensor(b), [0, 1], [
+        rowwise.reduced_normal_likelihood(plan, pt.as_tensor(b), [0, 1], [
             (fa, pt.as_tensor(va), None), (fc, pt.as_tensor(vc), None)], pt.as_tensor(s))
     np.testing.assert_allclose(m.compile_logp()({}), stats.norm.logpdf(plan.y, mean, s).sum(), rtol=1e-9)
 
@@ -182,10 +182,10 @@ def test_eight_schools_fast_path_matches_quadrature(tmp_path):
         "groups": {"school": {}},
         "priors": {"intercept": {"normal": {"mu": 0, "sigma": 20}},
                    "school.sd": {"half_normal": {"sigma": 10}}}})
-    assert gaussian.choose_path(plan)[0] == "collapsed"
-    problem = gaussian.collapsed_problem(plan)
-    idata = _sample(gaussian.build_collapsed_model(plan, problem), plan, 11, draws=2000)
-    gaussian.add_group_effects(idata, plan, 12, problem)
+    assert paths.best_path(plan)[0] == "collapsed"
+    problem = collapsed.collapsed_problem(plan)
+    idata = _sample(collapsed.build_collapsed_model(plan, problem), plan, 11, draws=2000)
+    collapsed.add_group_effects(idata, plan, 12, problem)
     # No funnel is left; a rare divergence can still come from the half-normal prior's
     # wall on log(tau) (measured here: 1 in 28,000 draws over 7 seeds).
     assert int(idata.sample_stats.diverging.sum()) <= 1
@@ -223,9 +223,9 @@ def test_collapsed_posterior_matches_plain_model(tmp_path):
     plan = _plan(tmp_path, frame, {"outcome": {"column": "y"}, "predictors": ["x"],
                                    "groups": {"line": {"varying": ["intercept", "x"],
                                                        "parameterisation": "non_centred"}}})
-    problem = gaussian.collapsed_problem(plan)
-    fast = _sample(gaussian.build_collapsed_model(plan, problem), plan, 21)
-    gaussian.add_group_effects(fast, plan, 22, problem)
+    problem = collapsed.collapsed_problem(plan)
+    fast = _sample(collapsed.build_collapsed_model(plan, problem), plan, 21)
+    collapsed.add_group_effects(fast, plan, 22, problem)
     slow = _sample(build_model(plan), plan, 23, target_accept=0.95)
     for name in ("b", "residual_sd", "line__sd", "line__effect"):
         a, b = fast.posterior[name], slow.posterior[name]

@@ -5,7 +5,7 @@ import numba
 import numpy as np
 
 import hierwork  # noqa: F401  (imports ArviZ through the cache)
-from hierwork.jitcache import caching
+from hierwork.runtime import caching
 
 
 def test_numba_vectorize_is_restored_after_import():

@@ -9,13 +9,16 @@ Data: the invented wheat demo (hierwork/demo.py).
 """
 from __future__ import annotations
 
+from types import SimpleNamespace
+
 import numpy as np
 import pandas as pd
 import pytest
 
 import predictive_kit as kit
 from hierwork.cli import main
-from hierwork.predict import _group_index, _labels, predict
+from hierwork.data.labels import group_labels
+from hierwork.results.predict import _group_index, predict
 
 WHEAT = (kit.Path(__file__).parent.parent / "model_specs" / "wheat.yaml").read_text().replace("../demo/data", "DEMO")
 
@@ -57,10 +60,10 @@ def test_unseen_group_variance_matches_total_variance(run):
 
 
 def test_nested_labels_compose_like_fitting():
-    factors = [{"name": "region", "column": "region", "within": None},
-               {"name": "farm", "column": "farm", "within": "region"}]
+    factors = [SimpleNamespace(name="region", column="region", within=None),
+               SimpleNamespace(name="farm", column="farm", within="region")]
     frame = pd.DataFrame({"region": ["north", "south"], "farm": ["7", "7"]})
-    labels = _labels(frame, factors)
+    labels = group_labels(frame, factors)  # the one rule, shared by fitting and predict
     assert list(labels["farm"]) == ["north/7", "south/7"]
     index, new = _group_index(labels["farm"], ["north/7"])
     assert list(index) == [0, 1] and new == ["south/7"]

@@ -1,4 +1,4 @@
-"""Posterior and prior predictive checks (hierwork/predictive.py).
+"""Posterior and prior predictive checks (hierwork/results/predictive.py, prior_predictive.py).
 
 * The numpy linear predictor and log densities against PyMC's own per-row log
   density of the same model (plain path), to 1e-8.
@@ -18,10 +18,12 @@ import pytest
 from scipy import stats
 
 import predictive_kit as kit
-from hierwork import predictive
-from hierwork.api import check
-from hierwork.gaussian import add_group_effects
-from hierwork.model import build_model
+from hierwork.results import predictive
+from hierwork.pipeline import check
+from hierwork.model.collapsed import add_group_effects
+from hierwork.model.rowwise import build_model
+from hierwork.results import prior_predictive
+from hierwork.results.draws import draws_of, pointwise_log_likelihood, rows_of
 
 NESTED = """format: hierwork/1
 name: nested
@@ -55,10 +57,8 @@ def _pymc_pointwise(plan, draws=12):
 
 
 def _ours(plan, idata):
-    draws = predictive.draws_of(idata.posterior, plan.factors)
-    rows = predictive.rows_of(plan)
-    return predictive.log_density(plan.family, plan.y, predictive.linear_predictor(draws, rows), draws, rows,
-                                  slice(None))
+    draws = draws_of(idata.posterior, plan.factors, plan.family.parameters(plan.outcome))
+    return pointwise_log_likelihood(draws, rows_of(plan), plan.family)
 
 
 @pytest.mark.parametrize("text, family", [
@@ -104,7 +104,7 @@ def test_calibration_near_nominal_on_correct_model(tmp_path):
     kit.simulate_sites(tmp_path / "simulated.csv", seed=4, n_sites=30, per_site=10, mu=10, site_sd=2,
                        resid_sd=3, label="p{}")
     plan, idata = kit.sample(kit.write(tmp_path, SIMULATED.replace("DATA", str(tmp_path))))
-    files = predictive.augment(idata, plan, plan.spec, 9)
+    files = kit.augment(idata, plan, 9)
     report = json.loads(files["calibration.json"])
     for level in report["levels"]:
         inside = round(level["coverage"] * level["rows"])
@@ -124,7 +124,7 @@ def test_rail_calibration_sanity(rail):
     # rail (Devore 2000, Example 10.10): 18 rows; sanity only (common practice): the 94% intervals
     # hold most rows and the 50% intervals neither none nor all.
     plan, idata = rail
-    report = json.loads(predictive.augment(idata.copy(), plan, plan.spec, 1)["calibration.json"])
+    report = json.loads(kit.augment(idata.copy(), plan, 1)["calibration.json"])
     cover = {lv["nominal"]: lv["coverage"] for lv in report["levels"]}
     assert cover[0.94] >= 0.8 and 0.2 <= cover[0.5] <= 0.9
 
@@ -133,7 +133,7 @@ def test_over_budget_thins_and_falls_back_to_group_loo(rail, monkeypatch):
     plan, idata = rail
     idata = add_group_effects(idata.copy(), plan, 2, group_log_likelihood=True)
     monkeypatch.setattr(predictive, "MAX_CELLS", 2000)  # 600 draws x 18 rows > 2000
-    files = predictive.augment(idata, plan, plan.spec, 1)
+    files = kit.augment(idata, plan, 1)
     assert idata.posterior_predictive.attrs["thin"] == 6
     assert idata.posterior_predictive["y"].shape == (2, 50, plan.n)
     assert "log_likelihood" not in idata.groups() or "y" not in idata.log_likelihood
@@ -147,14 +147,14 @@ def test_prior_predictive_flags_absurd_priors(tmp_path):
     # Thresholds are common practice (module constants); a normal(0, 1e5) intercept on travel
     # times of 28-100 ns is absurd, the data-scaled defaults are not.
     fine = check(kit.write(tmp_path, kit.RAIL)).plan
-    summary = predictive.prior_predictive(fine, 1, draws=200)
-    assert summary["warnings"] == [] and summary["share_far_outside"] <= predictive.FAR_SHARE
+    summary = prior_predictive.prior_predictive(fine, 1, draws=200)
+    assert summary["warnings"] == [] and summary["share_far_outside"] <= prior_predictive.FAR_SHARE
     wide = check(kit.write(tmp_path, kit.RAIL + "priors: {intercept: {normal: {mu: 0, sigma: 100000}}}\n")).plan
-    text = predictive.prior_predictive_text(wide, 1, draws=200)
+    text = prior_predictive.prior_predictive_text(wide, 1, draws=200)
     assert "warning: the priors imply implausible values" in text
     logit = check(kit.write(tmp_path, kit.CBPP + "priors: {intercept: {normal: {mu: 0, sigma: 20}}}\n")).plan
-    summary = predictive.prior_predictive(logit, 1, draws=200)
-    assert summary["share_probability_extreme"] > predictive.EXTREME_P_SHARE
+    summary = prior_predictive.prior_predictive(logit, 1, draws=200)
+    assert summary["share_probability_extreme"] > prior_predictive.EXTREME_P_SHARE
     assert any("below 1% or above 99%" in w for w in summary["warnings"])
 
 
@@ -163,7 +163,7 @@ def test_over_work_budget_summaries_use_thinned_draws(rail, monkeypatch):
     monkeypatch.setattr(predictive, "SUMMARY_CELLS", 18 * 150)  # 2,000 draws x 18 rows > 2,700
     monkeypatch.setattr(predictive, "MAX_CELLS", 18 * 40)
     idata = idata.copy()
-    files = predictive.augment(idata, plan, plan.spec, 1)
+    files = kit.augment(idata, plan, 1)
     per_chain = idata.posterior.sizes["draw"]
     step = predictive.summary_thin(2 * per_chain, per_chain, plan.n)
     report = json.loads(files["calibration.json"])

@@ -101,8 +101,8 @@ def test_oats_population_terms_equal_mixedlm(oats):
     mcse = az.mcse(run.posterior.posterior[["b"]], method="mean")["b"]
     expected = {
         "intercept": reml.fe_params["Intercept"],
-        "variety[Marvellous]": reml.fe_params["C(variety, Treatment('Golden.rain'))[T.Marvellous]"],
-        "variety[Victory]": reml.fe_params["C(variety, Treatment('Golden.rain'))[T.Victory]"],
+        "variety=Marvellous": reml.fe_params["C(variety, Treatment('Golden.rain'))[T.Marvellous]"],
+        "variety=Victory": reml.fe_params["C(variety, Treatment('Golden.rain'))[T.Victory]"],
         "nitrogen_cwt": reml.fe_params["nitrogen_cwt"],
     }
     for term, value in expected.items():

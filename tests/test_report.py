@@ -14,7 +14,8 @@ from hierwork.errors import RunFolderError
 from hierwork.report import render_report, write_report
 from hierwork.report import figures
 from hierwork.report.markdown import md_escape
-from hierwork.report.verdict import CheckLine, fmt
+from hierwork.formatting import number as fmt
+from hierwork.report.verdict import CheckLine
 from test_report_fixture import HOSTILE, Page, build_run, copy_run, run_root  # noqa: F401
 
 
@@ -125,7 +126,7 @@ def test_passing_verdict_and_no_not_for_use_marks(passing):
     _, html = passing
     verdict = Page(html).find("section", id="verdict")[0]
     assert "passed" in verdict[1]["class"]
-    assert "Gate passed: all 5 convergence checks met their limits." in verdict[2]
+    assert "Gate passed: all 6 convergence checks met their limits." in verdict[2]
     page = Page(html)
     assert "NOT FOR USE" not in _text(html) and "do not use" not in _text(html)
     assert not [a for t, a, _ in page.elements if "not-for-use" in a.get("class", "")]
@@ -141,7 +142,7 @@ def test_failing_verdict_names_check_value_limit_parameter_and_advice(failing):
     assert verdict.startswith("Verdict \u2716 Gate failed (")
     assert (f"Bulk ESS {round(check['value'])} on {check['worst_parameter']}: must be at least "
             f"100,000; short of the limit by {fmt(round(100000 - check['value']))}") in verdict
-    assert "Run longer chains: raise sampling.draws to 2000." in verdict
+    assert all(advice in verdict for advice in diagnostics["advice"]) and diagnostics["advice"]
     assert "do not use them" in verdict
     # Estimates and pooling sections are marked, and every figure is stamped.
     page = Page(html)
@@ -226,7 +227,7 @@ def test_run_without_diagnostics_is_marked_unchecked(run_root, tmp_path):
 def test_write_report_replaces_files_atomically(run_root, tmp_path):
     run = copy_run(build_run(run_root), tmp_path / "rewrite")
     written = write_report(run)
-    assert set(written) == {"report.html", "summary.md"}
+    assert set(written.paths) == {"report.html", "summary.md"}
     first = (run / "report.html").read_text()
     (run / "diagnostics.json").write_text("{not json")
     with pytest.raises(RunFolderError, match=re.escape("diagnostics.json is not valid JSON")):
@@ -316,5 +317,7 @@ def test_long_group_tables_are_cut_with_a_pointer_to_the_csv(run_root, monkeypat
     assert page.find("a", href="group_estimates.csv")
     group_table = [a for t, a, _ in page.elements if t == "table" and "sortable" in a.get("class", "")]
     assert len(group_table) == 1
-    # Header plus rows: 5 groups, 4 parameters (summary.csv), 5 gate checks.
-    assert len(page.find("tr")) == (1 + 5) + (1 + 4) + (1 + 5)
+    # Header plus rows: 5 groups, the parameters of summary.csv, every gate check.
+    summary = pd.read_csv(build_run(run_root) / "summary.csv")
+    checks = json.loads((build_run(run_root) / "diagnostics.json").read_text())["checks"]
+    assert len(page.find("tr")) == (1 + 5) + (1 + len(summary)) + (1 + len(checks))

@@ -43,9 +43,9 @@ import yaml
 from scipy import stats
 
 import hierwork
-from hierwork import gaussian
-from hierwork.model import build_model
-from hierwork.suffstats import cell_stats
+from hierwork.model import collapsed
+from hierwork.model.rowwise import build_model
+from hierwork.model.cells import cell_stats
 
 pytestmark = pytest.mark.slow
 
@@ -182,7 +182,7 @@ def test_collapsed_normal_calibrated(tmp_path):
     made shared variables here so one compiled model serves every replicate.
     """
     plan = _plan(tmp_path, "normal", "centred", SCALE_PRIORS)
-    problem = gaussian.collapsed_problem(plan)
+    problem = collapsed.collapsed_problem(plan)
     leaf = problem.chain[0]
     swapped = ("xty", "yty", "centre")
 
@@ -191,10 +191,10 @@ def test_collapsed_normal_calibrated(tmp_path):
         return {name: getattr(s, name) for name in swapped}
 
     shared = {name: pytensor.shared(value, name=name) for name, value in statistics(plan.y).items()}
-    model = gaussian.build_collapsed_model(plan, dataclasses.replace(
+    model = collapsed.build_collapsed_model(plan, dataclasses.replace(
         problem, stats=dataclasses.replace(problem.stats, **shared)))
 
     def with_effects(idata, y, i):
-        return gaussian.add_group_effects(idata, dataclasses.replace(plan, y=y), seed=i)
+        return collapsed.add_group_effects(idata, dataclasses.replace(plan, outcome=dataclasses.replace(plan.outcome, y=y)), seed=i)
 
     _assert_calibrated(*_sbc(model, statistics, with_effects, plan, CASES["normal"][2], seed=4000))

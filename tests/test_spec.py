@@ -8,8 +8,9 @@ from pathlib import Path
 import pytest
 
 import hierwork
-from hierwork.spec import SPEC_KEYS, spec_schema
-from hierwork.specdoc import END, START, key_rows, render_into
+from hierwork.declare.keys import SPEC_KEYS
+from hierwork.declare.schema import spec_schema
+from hierwork.declare.schema import END, START, key_rows, render_into
 
 README = Path(__file__).parent.parent / "README.md"
 PLOTS = Path(__file__).parent / "bad_inputs" / "plots.csv"
@@ -75,6 +76,6 @@ def test_schema_covers_every_key_and_is_json():
 def test_readme_key_reference_is_in_sync():
     text = README.read_text(encoding="utf-8")
     assert START in text and END in text
-    assert render_into(text) == text, "run: python -m hierwork.specdoc README.md"
+    assert render_into(text) == text, "run: python -m hierwork.declare.schema README.md"
     for key, *_ in key_rows(SPEC_KEYS):
         assert f"`{key}`" in text

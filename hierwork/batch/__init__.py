@@ -1,11 +1,7 @@
-"""Batches of fits: a resumable queue, automatic remedies, local or Dask runners.
+"""BATCH: many fits overnight; a resumable queue, automatic remedies, local or Dask runners.
 
 Nothing here does statistics: each attempt is one ``hierwork fit`` child
 process, judged by its exit code and run folder. See docs/batch.md. The entry
-point is :func:`hierwork.batch.runner.run_batch`; this package's top level
-holds only what the spec loader needs, so importing it stays light.
+point is :func:`hierwork.batch.runner.run_batch`; the spec keys a batch reads
+(``variants``, ``remedies``) are parsed in :mod:`hierwork.declare`.
 """
-from hierwork.batch.remedies import DEFAULT_POLICY, parse_policy
-from hierwork.batch.variants import expand_variants, parse_variants
-
-__all__ = ["DEFAULT_POLICY", "expand_variants", "parse_policy", "parse_variants"]

@@ -23,13 +23,13 @@ import sys
 from dataclasses import dataclass
 from pathlib import Path
 
+from hierwork.inference.checks import broken_text
+
 #: exit codes of ``hierwork fit`` (docs/contracts.md)
 EXIT_STATUS = {0: "passed", 3: "failed", 2: "invalid"}
 GUARD = str(Path(__file__).with_name("guard.py"))
 _PR_SET_PDEATHSIG = 1
 _LIBC = ctypes.CDLL(None, use_errno=True) if sys.platform.startswith("linux") else None
-#: a check's ``comparison`` states how it passes; a failed one broke it the other way
-NEGATED = {"<=": ">", ">=": "<", "<": ">=", ">": "<="}
 #: numeric libraries use one thread per process; chains already run in parallel
 THREAD_VARS = ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS")
 
@@ -135,21 +135,16 @@ def read_diagnostics(run_dir) -> dict | None:
 
 
 def gate_message(diagnostics: dict) -> str:
-    """The failing checks in one line, e.g. ``divergences 12 > 0; r_hat 1.04 > 1.01 (farm__sd)``."""
+    """The failing checks in one line, e.g. ``divergences 12 > 0; r_hat 1.0104 > 1.01 (farm__sd)``."""
     parts = []
     for check in diagnostics.get("checks", []):
         if check.get("passed", True):
             continue
-        broken = NEGATED.get(check.get("comparison"), "vs")
-        text = f"{check.get('name')} {_num(check.get('value'))} {broken} {_num(check.get('threshold'))}"
+        text = broken_text(str(check.get("name")), check.get("value"), check.get("threshold"), check.get("comparison"))
         if check.get("worst_parameter"):
             text += f" ({check['worst_parameter']})"
         parts.append(text)
     return "; ".join(parts) or "the gate failed"
-
-
-def _num(value) -> str:
-    return f"{value:.4g}" if isinstance(value, float) else str(value)
 
 
 def last_line(log_path) -> str | None:

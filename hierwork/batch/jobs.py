@@ -17,8 +17,8 @@ from pathlib import Path
 
 import yaml
 
-from hierwork.batch.remedies import DEFAULT_POLICY, Policy, parse_policy
-from hierwork.batch.variants import SLUG, expand_variants, parse_variants
+from hierwork.declare.remedies import DEFAULT_POLICY, Policy, parse_policy
+from hierwork.declare.variants import SLUG, expand_variants, parse_variants
 from hierwork.errors import HierworkError
 
 SPEC_SUFFIXES = (".yaml", ".yml")

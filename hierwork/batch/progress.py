@@ -86,6 +86,32 @@ def status_lines(queue: Queue, width: int = 100) -> list[str]:
     return lines
 
 
+def batch_status(batch_dir) -> str:
+    """The text of ``hierwork status``: whether the batch runs, its progress, and one line per job.
+
+    Raises
+    ------
+    RunFolderError
+        When ``batch_dir`` holds no batch.
+    """
+    queue = Queue(batch_dir)
+    try:
+        owner = queue.running_owner()
+        lines = [f"batch {batch_dir}: " + (f"running (pid {owner['pid']})" if owner else "not running")]
+        lines += status_lines(queue)
+        jobs = queue.jobs()
+        width = max([len(j["name"]) for j in jobs] + [3])
+        lines += ["", f"{'job':<{width}}  {'status':<11}  attempts  {'time':>7}  note"]
+        now = time.time()
+        for job in jobs:
+            took = duration((job["finished"] or now) - job["started"]) if job["started"] else ""
+            lines.append(f"{job['name']:<{width}}  {job['status']:<11}  {job['attempts']:>8}  {took:>7}  "
+                         f"{job['message'] or ''}")
+    finally:
+        queue.close()
+    return "\n".join(lines)
+
+
 def last_output(log_path: Path) -> str | None:
     """The latest progress text of a fit's log (after the last carriage return or newline)."""
     try:

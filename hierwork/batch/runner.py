@@ -206,7 +206,7 @@ def attempt_settings(job: JobDef, overrides: dict, run_dir: Path) -> dict:
     table's defaults; each factor's form is read from the run's ``plan.json``
     (which resolves ``auto``), else from the spec.
     """
-    from hierwork.spec import SPEC_KEYS
+    from hierwork.declare.keys import SPEC_KEYS
 
     defaults = SPEC_KEYS["sampling"].fields
     sampling = job.spec.get("sampling") or {}
@@ -281,6 +281,9 @@ def run_batch(paths, out, *, workers: int = 1, scheduler: str | None = None, res
         Bad paths, duplicate job names, an existing batch without ``resume``,
         or a missing batch with ``resume`` and no paths.
     """
+    if isinstance(workers, bool) or not isinstance(workers, int) or workers < 1:
+        raise HierworkError(f"workers must be a whole number of at least 1, got {workers!r}", where="hierwork batch",
+                            hint="e.g. --workers 2")
     out = Path(out)
     exists = (out / DB_NAME).is_file()
     if exists and not resume:

@@ -18,6 +18,7 @@ from urllib.parse import quote
 
 from hierwork.batch.progress import counts, duration, jobs_text
 from hierwork.batch.queue import Queue
+from hierwork.formatting import number_against
 
 CAUTION = ("Model-based estimates, to be reviewed by a qualified analyst before decisions "
            "about people's health or safety.")
@@ -28,19 +29,24 @@ COLUMNS = ("job", "verdict", "attempts", "max R-hat", "min ESS", "divergences", 
 
 
 def key_numbers(diagnostics: dict | None) -> dict:
-    """Largest R-hat, smallest ESS (bulk or tail) and divergences from a ``diagnostics.json`` dict."""
-    found = {"max R-hat": None, "min ESS": None, "divergences": None}
-    for check in (diagnostics or {}).get("checks", []):
-        name, value = str(check.get("name", "")).lower(), check.get("value")
-        if not isinstance(value, (int, float)):
-            continue
-        if "hat" in name:
-            found["max R-hat"] = value
-        elif "ess" in name:
-            found["min ESS"] = value if found["min ESS"] is None else min(found["min ESS"], value)
-        elif "diverg" in name:
-            found["divergences"] = value
-    return found
+    """Largest R-hat, smallest ESS (bulk or tail) and divergences of a ``diagnostics.json`` dict, as text.
+
+    Each value shows enough digits to be told apart from its gate threshold.
+    """
+    checks = {c.get("name"): c for c in (diagnostics or {}).get("checks", [])
+              if isinstance(c.get("value"), (int, float))}
+
+    def shown(name, whole=False):
+        check = checks.get(name)
+        if check is None:
+            return None
+        value = round(check["value"]) if whole else check["value"]
+        return number_against(value, check.get("threshold"))
+
+    ess = [checks[k] for k in ("ess_bulk", "ess_tail") if k in checks]
+    low = min(ess, key=lambda c: c["value"])["name"] if ess else None
+    return {"max R-hat": shown("r_hat"), "min ESS": shown(low, whole=True) if low else None,
+            "divergences": shown("divergences", whole=True)}
 
 
 def rows(batch_dir: Path, queue: Queue) -> list[dict]:
@@ -73,12 +79,8 @@ def _report(batch_dir: Path, attempt: dict | None) -> str | None:
     return path if (batch_dir / path).is_file() else None
 
 
-def _num(value, whole: bool = False) -> str:
-    if value is None:
-        return ""
-    if whole:
-        return f"{value:.0f}"
-    return f"{value:.3f}" if isinstance(value, float) and abs(value) < 10 else f"{value:.0f}"
+def _num(value) -> str:
+    return "" if value is None else value
 
 
 def render_markdown(batch_dir: Path, queue: Queue) -> str:
@@ -91,7 +93,7 @@ def render_markdown(batch_dir: Path, queue: Queue) -> str:
     for r in data:
         link = f"[report]({quote(r['report'])})" if r["report"] else ""
         cells = [r["job"], r["verdict"], str(r["attempts"]), _num(r["max R-hat"]), _num(r["min ESS"]),
-                 _num(r["divergences"], whole=True), r["time"], link, r["note"]]
+                 _num(r["divergences"]), r["time"], link, r["note"]]
         out.append("| " + " | ".join(_md(c) if c != link else c for c in cells) + " |")
     retried = [r for r in data if r["attempts"] > 1]
     if retried:
@@ -124,7 +126,7 @@ def render_html(batch_dir: Path, queue: Queue) -> str:
         cells = [f'<td title="{e(r["source"])}">{e(r["job"])}</td>',
                  f'<td class="{e(r["status"])}">{e(r["verdict"])}</td>',
                  f"<td>{r['attempts']}</td>",
-                 *(f'<td class="num">{_num(r[k], whole=k == "divergences")}</td>'
+                 *(f'<td class="num">{_num(r[k])}</td>'
                    for k in ("max R-hat", "min ESS", "divergences")),
                  f"<td>{e(r['time'])}</td>", f"<td>{link}</td>", f"<td>{e(r['note'])}</td>"]
         body.append("<tr>" + "".join(cells) + "</tr>")

@@ -38,13 +38,19 @@ def build_parser() -> argparse.ArgumentParser:
 
 
 def _quiet_libraries() -> None:
-    """Keep library chatter (import notices, sampler start-up lines) off the user's screen."""
+    """Keep library chatter (import notices, sampler start-up lines) off the user's screen.
+
+    PyMC adds a console handler of its own at import unless the root logger has
+    one; a null handler there keeps every library's log records off the terminal.
+    """
     import logging
     import warnings
 
     warnings.filterwarnings("ignore", message=".*ArviZ is undergoing a major refactor.*")
     warnings.filterwarnings("ignore", message=".*could not link to a BLAS.*")
     warnings.filterwarnings("ignore", category=RuntimeWarning)
+    if not logging.root.handlers:
+        logging.root.addHandler(logging.NullHandler())
     for name in ("pymc", "pytensor", "arviz"):
         logging.getLogger(name).setLevel(logging.ERROR)
 

@@ -23,13 +23,11 @@ def register(sub) -> None:
 
 
 def run(args) -> int:
-    from hierwork.batch.runner import run_batch
+    import hierwork
     from hierwork.batch.jobs import load_jobs
     from hierwork.errors import HierworkError
 
     out = args.resume if isinstance(args.resume, str) else args.out
-    if args.workers < 1:
-        raise HierworkError(f"--workers must be at least 1, got {args.workers}", where="hierwork batch")
     if args.dry_run:
         if not args.paths:
             raise HierworkError("--dry-run needs spec files or folders", where="hierwork batch")
@@ -43,8 +41,8 @@ def run(args) -> int:
         raise HierworkError("no specs given", where="hierwork batch",
                             hint="name spec files or folders, or --resume DIR")
     try:
-        tally = run_batch(args.paths, out, workers=args.workers, scheduler=args.scheduler,
-                          resume=bool(args.resume))
+        tally = hierwork.run_batch(args.paths, out, workers=args.workers, scheduler=args.scheduler,
+                                   resume=bool(args.resume))
     except KeyboardInterrupt:
         print(f"hierwork: batch stopped; finished runs are kept; continue with: hierwork batch --resume {out}",
               file=sys.stderr)
@@ -59,7 +57,7 @@ def dry_run_lines(jobs) -> list[str]:
     Each job's spec is validated with its overrides (as ``fit`` will), without reading the data.
     """
     from hierwork.errors import HierworkError
-    from hierwork.spec import load_spec
+    from hierwork.declare.spec import load_spec
 
     lines = [f"{len(jobs)} jobs:"]
     for job in jobs:

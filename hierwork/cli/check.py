@@ -22,9 +22,7 @@ def run(args) -> int:
     report = hierwork.check(args.spec, overrides_from(args))
     print(json.dumps(report.to_dict(), indent=2) if args.json else report.text())
     if args.prior_predictive:
-        from hierwork.predictive import prior_predictive_text
-
-        print("\n" + prior_predictive_text(report.plan, report.plan.spec.sampling["seed"]))
+        print("\n" + report.prior_predictive_text())
     if not args.json:
         print("\ncheck OK: spec and data are valid")
     return 0

@@ -16,11 +16,11 @@ def register(sub) -> None:
 
 
 def run(args) -> int:
+    import hierwork
     from hierwork.errors import HierworkError
-    from hierwork.report import compare_runs
-    from hierwork.runs import write_atomic
+    from hierwork.runfolder import write_atomic
 
-    comparison = compare_runs(args.run_a, args.run_b)
+    comparison = hierwork.compare_runs(args.run_a, args.run_b)
     print(comparison.text(), end="")
     if args.html:
         out = Path(args.html)

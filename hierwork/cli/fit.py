@@ -19,24 +19,17 @@ def register(sub) -> None:
 
 def run(args) -> int:
     import hierwork
+    from hierwork.formatting import number, number_against
 
     result = hierwork.fit(args.spec, out=args.out, force=args.force, overrides=overrides_from(args),
                           progress=False if args.quiet else None)
-    diag = result.diagnostics
     print(f"run folder: {result.path}")
-    for check in diag["checks"]:
+    for check in result.diagnostics["checks"]:
         mark = "ok  " if check["passed"] else "FAIL"
         where = f"  (worst: {check['worst_parameter']})" if check["worst_parameter"] and not check["passed"] else ""
-        print(f"  {mark} {check['name']:<12} {_fmt(check['value'])}  needs {check['comparison']} "
-              f"{check['threshold']:g}{where}")
+        print(f"  {mark} {check['name']:<12} {number_against(check['value'], check['threshold'])}  needs "
+              f"{check['comparison']} {number(check['threshold'])}{where}")
     verdict = "gate PASSED: estimates may be used" if result.passed else \
         "gate FAILED: estimates are NOT valid (see diagnostics.json for advice)"
     print(verdict, file=sys.stdout)
     return EXIT_OK if result.passed else EXIT_GATE
-
-
-def _fmt(value: float) -> str:
-    """Enough digits to see a value against its threshold (R-hat 1.0104 is not 1.01)."""
-    if float(value).is_integer() or abs(value) >= 10:
-        return f"{value:.0f}"
-    return f"{value:.4f}"

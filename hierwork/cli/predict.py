@@ -22,18 +22,15 @@ def register(sub) -> None:
 
 
 def run(args) -> int:
+    import hierwork
     from hierwork.errors import HierworkError
-    from hierwork.predict import predict
-    from hierwork.runs import write_atomic
+    from hierwork.runfolder import write_atomic
 
-    if args.interval is not None and not 0.5 <= args.interval < 1:
-        raise HierworkError(f"--interval must be at least 0.5 and below 1, got {args.interval:g}",
-                            where="--interval")
     out = Path(args.out) if args.out else None
     if out is not None and not out.parent.is_dir():
         raise HierworkError(f"folder {str(out.parent)!r} does not exist", where="--out",
                             hint="create it first or choose another path")
-    table = predict(args.run, args.new, seed=args.seed, interval=args.interval)
+    table = hierwork.predict(args.run, args.new, seed=args.seed, interval=args.interval)
     if out is None:
         table.to_csv(sys.stdout, index=False)
         return 0

@@ -11,14 +11,11 @@ def register(sub) -> None:
 
 
 def run(args) -> int:
+    import hierwork
     from hierwork.cli import EXIT_GATE, EXIT_OK
-    from hierwork.report import write_report
-    from hierwork.report.runfolder import read_run
-    from hierwork.report.verdict import verdict
 
-    written = write_report(args.run)
-    for path in written.values():
+    written = hierwork.write_report(args.run)
+    for path in written.paths.values():
         print(f"wrote {path}")
-    result = verdict(read_run(args.run).diagnostics)
-    print(result.headline)
-    return EXIT_GATE if result.status == "failed" else EXIT_OK
+    print(written.headline)
+    return EXIT_GATE if written.status == "failed" else EXIT_OK

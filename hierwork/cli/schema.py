@@ -10,7 +10,7 @@ def register(sub) -> None:
 
 
 def run(args) -> int:
-    from hierwork.spec import spec_schema
+    import hierwork
 
-    print(json.dumps(spec_schema(), indent=2))
+    print(json.dumps(hierwork.spec_schema(), indent=2))
     return 0

@@ -3,7 +3,7 @@
 Entry points (no statistics are computed here; everything is read from the
 run folder's files, docs/contracts.md):
 
-``write_report(run) -> dict[str, pathlib.Path]``
+``write_report(run) -> WrittenReport``
     Render both files and write them into the run folder, each atomically
     (written to a temporary sibling, then renamed). ``run`` is a path or any
     object with a ``path`` attribute (e.g. :class:`hierwork.Run`). Used at the
@@ -15,15 +15,15 @@ run folder's files, docs/contracts.md):
 """
 from __future__ import annotations
 
-from pathlib import Path
+from dataclasses import dataclass
 
 from hierwork.report.compare import Comparison, compare_runs
 from hierwork.report.html import render_html
 from hierwork.report.markdown import render_markdown
-from hierwork.report.runfolder import read_run
-from hierwork.runs import write_atomic
+from hierwork.report.verdict import verdict
+from hierwork.runfolder import Run, write_atomic
 
-__all__ = ["render_report", "write_report", "compare_runs", "Comparison", "REPORT_FILES"]
+__all__ = ["render_report", "write_report", "WrittenReport", "compare_runs", "Comparison", "REPORT_FILES"]
 
 #: Files written into the run folder by :func:`write_report`.
 REPORT_FILES = ("report.html", "summary.md")
@@ -37,10 +37,19 @@ def render_report(run) -> str:
     hierwork.RunFolderError
         If the folder is missing, holds no run files, or a file is unreadable.
     """
-    return render_html(read_run(run))
+    return render_html(Run.open(run))
 
 
-def write_report(run) -> dict[str, Path]:
+@dataclass(frozen=True)
+class WrittenReport:
+    """What :func:`write_report` wrote, and the gate's verdict in words."""
+
+    paths: dict
+    status: str
+    headline: str
+
+
+def write_report(run) -> WrittenReport:
     """Write ``report.html`` and ``summary.md`` into the run folder.
 
     Both texts are rendered before anything is written; each file then
@@ -48,11 +57,12 @@ def write_report(run) -> dict[str, Path]:
 
     Returns
     -------
-    dict of str to pathlib.Path
-        The path of each written file, keyed by file name.
+    WrittenReport
+        The path of each written file, keyed by file name, and the verdict.
     """
-    files = read_run(run)
+    files = Run.open(run)
     texts = {"report.html": render_html(files), "summary.md": render_markdown(files)}
     for name, text in texts.items():
         write_atomic(files.path / name, text)
-    return {name: files.path / name for name in texts}
+    v = verdict(files.diagnostics)
+    return WrittenReport({name: files.path / name for name in texts}, v.status, v.headline)

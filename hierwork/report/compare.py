@@ -16,8 +16,9 @@ import pandas as pd
 
 from hierwork.report.html import data_table, page
 from hierwork.report.markup import el
-from hierwork.report.runfolder import RunFiles, read_run
-from hierwork.report.verdict import fmt, verdict
+from hierwork.formatting import number as fmt
+from hierwork.report.verdict import verdict
+from hierwork.runfolder import Run
 
 __all__ = ["Comparison", "compare_runs", "spec_differences"]
 
@@ -71,8 +72,8 @@ def _moves(a: pd.DataFrame | None, b: pd.DataFrame | None, key: list,
 class Comparison:
     """Differences between run A and run B (see :func:`compare_runs`)."""
 
-    a: RunFiles
-    b: RunFiles
+    a: Run
+    b: Run
     spec_changes: list
     moved_groups: pd.DataFrame
     moved_parameters: pd.DataFrame
@@ -171,7 +172,7 @@ def _text_table(frame: pd.DataFrame) -> list[str]:
     return ["  " + "  ".join(c.ljust(w) for c, w in zip(row, widths)).rstrip() for row in cells]
 
 
-def _checks(a: RunFiles, b: RunFiles) -> list[tuple]:
+def _checks(a: Run, b: Run) -> list[tuple]:
     va, vb = verdict(a.diagnostics), verdict(b.diagnostics)
     by_a, by_b = {c.name: c for c in va.checks}, {c.name: c for c in vb.checks}
     rows = []
@@ -192,7 +193,7 @@ def compare_runs(a, b) -> Comparison:
     hierwork.RunFolderError
         If either is not a readable run folder.
     """
-    ra, rb = read_run(a), read_run(b)
+    ra, rb = Run.open(a), Run.open(b)
     moved_groups, only_a, only_b = _moves(ra.group_estimates, rb.group_estimates, _GROUP_KEY,
                                           "partial_mean", "partial_sd")
     moved_parameters, _, _ = _moves(ra.summary, rb.summary, ["parameter"], "mean", "sd")

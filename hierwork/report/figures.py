@@ -22,7 +22,7 @@ import matplotlib
 import numpy as np
 from matplotlib.figure import Figure
 
-from hierwork.report.verdict import fmt
+from hierwork.formatting import number as fmt
 
 __all__ = ["Plot", "PALETTE", "MAX_FOREST_GROUPS", "MAX_SCATTER_GROUPS", "pooling_plot",
            "trace_rank_plot", "energy_plot", "divergence_plot", "ppc_plot", "hyperparameters"]
@@ -47,8 +47,6 @@ MAX_FOREST_GROUPS = 40
 MAX_SCATTER_GROUPS = 3000
 #: Hyperparameters drawn in the trace and rank figure.
 MAX_TRACE_PARAMETERS = 10
-_LINK_SCALE = {"bernoulli": "log-odds", "binomial": "log-odds", "poisson": "log rate",
-               "negative_binomial": "log rate"}
 
 
 @dataclass(frozen=True)
@@ -108,7 +106,9 @@ def _stamp(fig: Figure, stamp: str | None) -> None:
 
 def scale_name(family: str) -> str:
     """The scale estimates are reported on: the linear predictor of ``family``."""
-    return _LINK_SCALE.get(family, "outcome units")
+    from hierwork.plan.families import REGISTRY, get_family
+
+    return get_family(family).link_scale if family in REGISTRY else "outcome units"
 
 
 # --- pooling ----------------------------------------------------------------

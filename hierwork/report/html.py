@@ -20,8 +20,9 @@ import pandas as pd
 
 from hierwork.report import figures
 from hierwork.report.markup import Raw, el
-from hierwork.report.runfolder import LOO_FILE, POOLING_FILE, RunFiles
-from hierwork.report.verdict import Verdict, fmt, verdict
+from hierwork.formatting import number as fmt
+from hierwork.report.verdict import Verdict, verdict
+from hierwork.runfolder import Run
 
 __all__ = ["render_html", "CAUTION", "page", "data_table"]
 
@@ -106,7 +107,7 @@ def data_table(frame: pd.DataFrame, labels: dict, caption: str, sortable: bool,
 
 # --- sections ----------------------------------------------------------------------
 
-def _verdict_section(run: RunFiles, v: Verdict) -> Raw:
+def _verdict_section(run: Run, v: Verdict) -> Raw:
     items = []
     if v.status == "failed":
         items.append(el("ul", [el("li", c.sentence()) for c in v.failed]))
@@ -130,7 +131,7 @@ def _verdict_section(run: RunFiles, v: Verdict) -> Raw:
               items, id="verdict", class_=f"verdict {v.status}", role="status")
 
 
-def _facts(run: RunFiles) -> list[str]:
+def _facts(run: Run) -> list[str]:
     facts = [f"outcome: {run.family}"]
     if run.group_estimates is not None:
         sizes = run.group_estimates.groupby("factor", sort=False)["group"].nunique()
@@ -151,10 +152,10 @@ def _banner(stamp: str | None) -> Raw:
               class_="banner")
 
 
-def _pooling_factor_text(run: RunFiles, factor: str, term: str) -> Raw:
+def _pooling_factor_text(run: Run, factor: str, term: str) -> Raw:
     table = run.pooling
     if table is None:
-        return el("p", f"Pooling factor not recorded ({POOLING_FILE} is missing).", class_="note")
+        return el("p", f"Pooling factor not recorded (pooling.csv is missing).", class_="note")
     row = table[(table["factor"] == factor) & (table["term"] == term)]
     if row.empty:
         return el("p", f"Pooling factor not recorded for {factor}, {term}.", class_="note")
@@ -166,7 +167,7 @@ def _pooling_factor_text(run: RunFiles, factor: str, term: str) -> Raw:
               "value.", class_="lambda")
 
 
-def _pooling_section(run: RunFiles, stamp: str | None) -> Raw:
+def _pooling_section(run: Run, stamp: str | None) -> Raw:
     table = run.group_estimates
     content = []
     if table is None:
@@ -208,7 +209,7 @@ def _gate_breaches(v: Verdict):
     return bad
 
 
-def _estimates_section(run: RunFiles, v: Verdict, stamp: str | None) -> Raw:
+def _estimates_section(run: Run, v: Verdict, stamp: str | None) -> Raw:
     level = f"{run.interval:.0%}"
     content = [_banner(stamp), el("h3", "Group estimates")]
     table = run.group_estimates
@@ -250,7 +251,7 @@ def _checks_table(v: Verdict) -> Raw:
     return el("div", el("table", el("thead", head), el("tbody", rows)), class_="scroll")
 
 
-def _diagnostics_section(run: RunFiles, idata, v: Verdict, stamp: str | None) -> Raw:
+def _diagnostics_section(run: Run, idata, v: Verdict, stamp: str | None) -> Raw:
     bfmi = next((c.value for c in v.checks if c.name == "bfmi"), None)
     content = [el("h3", "Gate checks"), _checks_table(v)]
     if idata is None:
@@ -270,24 +271,24 @@ def _diagnostics_section(run: RunFiles, idata, v: Verdict, stamp: str | None) ->
     return el("section", el("h2", "Sampler diagnostics"), content, id="diagnostics")
 
 
-def _fit_section(run: RunFiles, idata, stamp: str | None) -> Raw:
+def _fit_section(run: Run, idata, stamp: str | None) -> Raw:
     ppc = None if idata is None else figures.ppc_plot(idata, stamp)
     content = [el("h3", "Posterior predictive check"),
                _figure(ppc, "No posterior predictive draws were stored in posterior.nc.", "ppc"),
                el("h3", "LOO comparison of pooling choices")]
-    if run.loo is None:
-        content.append(el("p", f"Not stored ({LOO_FILE} is absent from the run folder).",
+    if run.pooling_comparison is None:
+        content.append(el("p", f"Not stored (pooling_comparison.csv is absent from the run folder).",
                           class_="note"))
     else:
-        labels = {c: c.replace("_", " ") for c in run.loo.columns}
+        labels = {c: c.replace("_", " ") for c in run.pooling_comparison.columns}
         content += [el("p", "Expected log predictive density by PSIS-LOO (Vehtari, Gelman and "
                        "Gabry 2017); higher is better, differences within about two standard "
                        "errors are not decisive.", class_="note"),
-                    data_table(run.loo, labels, "LOO comparison", sortable=False)]
+                    data_table(run.pooling_comparison, labels, "LOO comparison", sortable=False)]
     return el("section", el("h2", "Fit to the data"), content, id="fit")
 
 
-def _provenance_section(run: RunFiles) -> Raw:
+def _provenance_section(run: Run) -> Raw:
     prov = run.provenance or {}
     if not prov:
         return el("section", el("h2", "Provenance"),
@@ -312,12 +313,12 @@ def _provenance_section(run: RunFiles) -> Raw:
     return el("section", el("h2", "Provenance"), content, id="provenance")
 
 
-def _fitted(run: RunFiles) -> str:
+def _fitted(run: Run) -> str:
     finished = (run.provenance or {}).get("finished")
     return f" \u00b7 fitted {finished}" if finished else ""
 
 
-def _header(run: RunFiles) -> Raw:
+def _header(run: Run) -> Raw:
     links = [("verdict", "Verdict"), ("pooling", "Pooling"), ("estimates", "Estimates"),
              ("diagnostics", "Diagnostics"), ("fit", "Fit"), ("provenance", "Provenance"),
              ("caution", "Caution")]
@@ -328,8 +329,8 @@ def _header(run: RunFiles) -> Raw:
                  aria_label="Sections"))
 
 
-def render_html(run: RunFiles) -> str:
-    """The report of ``run`` (read by :func:`hierwork.report.runfolder.read_run`)."""
+def render_html(run: Run) -> str:
+    """The report of ``run`` (a :class:`~hierwork.runfolder.Run`)."""
     v = verdict(run.diagnostics)
     stamp = _STAMP.get(v.status)
     idata = run.posterior

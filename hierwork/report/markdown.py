@@ -11,8 +11,9 @@ import re
 import pandas as pd
 
 from hierwork.report.html import CAUTION
-from hierwork.report.runfolder import RunFiles
-from hierwork.report.verdict import fmt, verdict
+from hierwork.formatting import number as fmt
+from hierwork.report.verdict import verdict
+from hierwork.runfolder import Run
 
 __all__ = ["render_markdown", "md_escape"]
 
@@ -42,7 +43,7 @@ def _table(frame: pd.DataFrame, columns: dict) -> list[str]:
     return lines
 
 
-def render_markdown(run: RunFiles) -> str:
+def render_markdown(run: Run) -> str:
     """The ``summary.md`` text of ``run``."""
     v = verdict(run.diagnostics)
     lines = [f"# {md_escape(run.title)}", "", f"**{md_escape(v.headline)}**", ""]

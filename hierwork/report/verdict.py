@@ -6,42 +6,13 @@ Shared by the HTML report, ``summary.md`` and ``hierwork compare``.
 """
 from __future__ import annotations
 
-import math
 from dataclasses import dataclass
 
-__all__ = ["CHECK_LABELS", "CheckLine", "Verdict", "verdict", "fmt"]
+from hierwork.formatting import number as fmt
+from hierwork.formatting import number_against
+from hierwork.inference.checks import BY_NAME
 
-#: Readable names of the gate's checks. Sources of the diagnostics: Vehtari et
-#: al. (2021) for rank-normalised split R-hat and bulk/tail ESS; Betancourt
-#: (2016) for E-BFMI; Betancourt (2017) for divergent transitions; the tree
-#: depth share is an efficiency warning (common practice).
-CHECK_LABELS = {
-    "r_hat": "R-hat",
-    "ess_bulk": "Bulk ESS",
-    "ess_tail": "Tail ESS",
-    "divergences": "Divergent transitions",
-    "bfmi": "E-BFMI",
-    "treedepth": "Share of draws at maximum tree depth",
-}
-
-
-def fmt(value, digits: int = 4) -> str:
-    """Format a number for display: ``digits`` significant digits, no exponent
-    between 0.001 and 10 000; ``-`` for missing values."""
-    if value is None or isinstance(value, str):
-        return "-" if value in (None, "") else str(value)
-    if isinstance(value, bool):
-        return "yes" if value else "no"
-    value = float(value)
-    if math.isnan(value):
-        return "-"
-    if value == int(value) and abs(value) < 1e15:
-        return f"{int(value):,}" if abs(value) >= 10_000 else str(int(value))
-    if abs(value) >= 10_000:
-        return f"{value:,.0f}"
-    if abs(value) < 1e-3:
-        return f"{value:.{digits - 1}e}"
-    return f"{value:.{digits}g}"
+__all__ = ["CheckLine", "Verdict", "verdict"]
 
 
 @dataclass(frozen=True)
@@ -80,7 +51,7 @@ class CheckLine:
         """The value; effective sample sizes as whole draws."""
         if self.name.startswith("ess") and self.value is not None:
             return fmt(round(float(self.value)))
-        return fmt(self.value)
+        return number_against(self.value, self.threshold)
 
     def sentence(self) -> str:
         """One line: ``Bulk ESS 212 on b[intercept]: must be at least 400; short ...``."""
@@ -127,10 +98,10 @@ def verdict(diagnostics: dict | None) -> Verdict:
     if diagnostics is None:
         return Verdict("unknown", (), ())
     checks = tuple(
-        CheckLine(name=str(c.get("name")), label=CHECK_LABELS.get(c.get("name"), str(c.get("name"))),
+        CheckLine(name=str(c.get("name")), label=BY_NAME[c.get("name")].label if c.get("name") in BY_NAME else str(c.get("name")),
                   value=c.get("value"), threshold=c.get("threshold"),
-                  comparison=str(c.get("comparison") or ("<=" if c.get("name") in
-                                                          ("r_hat", "divergences") else ">=")),
+                  comparison=str(c.get("comparison") or (BY_NAME[c["name"]].comparison
+                                                          if c.get("name") in BY_NAME else "<=")),
                   parameter=c.get("worst_parameter"), passed=bool(c.get("passed")))
         for c in diagnostics.get("checks", []))
     status = "passed" if diagnostics.get("passed") else "failed"

@@ -1,0 +1,43 @@
+"""Group labels: one rule for fitting and for ``predict``.
+
+Labels are the column's text with surrounding spaces removed. A factor nested
+in another (``within:``) is labelled by its parent's label and its own, joined
+by ``/`` (``north/7`` and ``south/7`` are two plots), so labels that repeat
+across parents name different groups.
+"""
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+
+#: Joins a parent's label and a nested group's own label.
+SEPARATOR = "/"
+
+
+def raw_labels(values: pd.Series) -> np.ndarray:
+    """A column's group labels as text (object array)."""
+    return values.astype(str).str.strip().to_numpy().astype(object)
+
+
+def group_labels(frame: pd.DataFrame, factors) -> dict:
+    """Factor name -> label of every row, nested labels composed with their parents'.
+
+    ``factors`` are objects with ``name``, ``column`` and ``within`` (the spec's
+    factors, or plan.json entries read back as such).
+    """
+    raw = {f.name: raw_labels(frame[f.column]) for f in factors}
+    parent = {f.name: f.within for f in factors}
+    labels: dict = {}
+
+    def composite(name):
+        if name not in labels:
+            own = raw[name]
+            if parent[name] is not None:
+                up = composite(parent[name])
+                own = np.array([f"{p}{SEPARATOR}{c}" for p, c in zip(up, own)], dtype=object)
+            labels[name] = own
+        return labels[name]
+
+    for f in factors:
+        composite(f.name)
+    return labels

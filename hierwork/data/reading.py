@@ -1,0 +1,236 @@
+"""Data file -> validated :class:`Dataset`.
+
+Everything the model will rely on is checked here, before any sampling: the
+columns exist, values are finite and of the right kind for the family (the
+family's own :meth:`~hierwork.plan.families.base.Family.check_data`), group
+labels are present, nested labels are composed with their parents' labels
+(:mod:`hierwork.data.labels`), and group-level predictors are constant within
+each group.
+"""
+from __future__ import annotations
+
+import hashlib
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+
+from hierwork.data.labels import group_labels
+from hierwork.data.rows import RowRef, check_missing, numeric
+from hierwork.errors import DataError, SpecError, choices_hint
+from hierwork.plan.families import get_family
+from hierwork.plan.families.base import OutcomeRows
+
+#: Outcome keys holding extra columns, in the order they are checked.
+OUTCOME_COLUMNS = ("trials", "exposure", "known_sd")
+
+
+@dataclass(frozen=True)
+class Dataset:
+    """Validated data for one spec.
+
+    Attributes
+    ----------
+    frame : pandas.DataFrame
+        The used columns, in file order, with a fresh 0..n-1 index.
+    path : Path
+        The data file.
+    sha256 : str
+        Hash of the file's bytes (provenance; staleness of saved runs).
+    ref : RowRef
+        Line number (CSV) or row position (Parquet) of each kept row, for messages.
+    labels : dict
+        Factor name -> array of string group labels, composed with their
+        parents' for nested factors (``"north/7"``).
+    categorical : dict
+        Predictor column -> levels with the reference level first.
+    """
+
+    frame: pd.DataFrame
+    path: Path
+    sha256: str
+    ref: RowRef
+    labels: dict = field(default_factory=dict)
+    categorical: dict = field(default_factory=dict)
+
+    @property
+    def n(self) -> int:
+        return len(self.frame)
+
+    def outcome_rows(self, outcome) -> OutcomeRows:
+        """The outcome and its family's columns as arrays."""
+        get = lambda column: None if column is None else self.frame[column].to_numpy(dtype=float)  # noqa: E731
+        return OutcomeRows(get(outcome.column), *(get(getattr(outcome, k)) for k in OUTCOME_COLUMNS))
+
+
+def read_table(path: Path) -> pd.DataFrame:
+    """Read a CSV or Parquet file into a DataFrame, as a user error if unreadable."""
+    suffix = path.suffix.lower()
+    try:
+        if suffix in (".parquet", ".pq"):
+            return pd.read_parquet(path)
+        if suffix in (".csv", ".txt", ".tsv"):
+            return pd.read_csv(path, sep="\t" if suffix == ".tsv" else ",", skipinitialspace=True)
+    except (OSError, ValueError, pd.errors.ParserError, UnicodeDecodeError) as exc:
+        first = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
+        raise DataError(f"cannot read the data file: {first}", where=str(path),
+                        hint="it must be a comma-separated text file with a header row, or Parquet") from None
+    raise DataError(f"unsupported data file type {suffix!r}", where=str(path),
+                    hint="use .csv, .tsv or .parquet")
+
+
+def is_csv(path: Path) -> bool:
+    return Path(path).suffix.lower() not in (".parquet", ".pq")
+
+
+def load_dataset(spec) -> Dataset:
+    """Read the spec's data file and check it against the spec.
+
+    Parameters
+    ----------
+    spec : Spec
+
+    Returns
+    -------
+    Dataset
+
+    Raises
+    ------
+    DataError
+        What is wrong, in which column and rows, and how to fix it.
+    """
+    path = spec.data_path
+    raw_bytes = path.read_bytes()
+    table = read_table(path)
+    if table.empty:
+        raise DataError("the data file has no rows", where=str(path))
+    table.columns = [str(c).strip() for c in table.columns]
+    ref = RowRef.of(str(path), len(table), is_csv(path))
+    used = used_columns(spec)
+    for column, key in used.items():
+        if column not in table.columns:
+            raise DataError(f"column {column!r} (from {key}) is not in the data file",
+                            where=f"{spec.where(key)} -> {path}",
+                            hint=choices_hint(column, list(table.columns)))
+    frame = table[list(used)].copy()
+    check_missing(frame, used, ref)
+    _check_outcome(spec, frame, ref)
+    categorical = _check_predictors(spec, frame, ref)
+    labels = group_labels(frame, spec.factors)
+    _check_groups(spec, labels, path)
+    _check_group_predictors(spec, frame, labels, path)
+    frame = frame.reset_index(drop=True)
+    return Dataset(frame=frame, path=path, sha256=hashlib.sha256(raw_bytes).hexdigest(), ref=ref,
+                   labels=labels, categorical=categorical)
+
+
+def used_columns(spec) -> dict:
+    """Column -> the spec key that asks for it (first mention wins)."""
+    used: dict = {}
+
+    def add(column, key):
+        if column is not None and column not in used:
+            used[column] = key
+
+    add(spec.outcome.column, "outcome.column")
+    for key in OUTCOME_COLUMNS:
+        add(getattr(spec.outcome, key), f"outcome.{key}")
+    for i, p in enumerate(spec.predictors):
+        add(p.column, f"predictors[{i}]")
+    for f in spec.factors:
+        add(f.column, f"groups.{f.name}.column")
+        for i, term in enumerate(f.varying):
+            if term != "intercept":
+                add(term, f"groups.{f.name}.varying[{i}]")
+        for i, col in enumerate(f.predictors):
+            add(col, f"groups.{f.name}.predictors[{i}]")
+    return used
+
+
+def _check_outcome(spec, frame, ref: RowRef) -> None:
+    out = spec.outcome
+    columns = {"outcome": out.column}
+    numeric(frame, out.column, "outcome", ref)
+    for key in OUTCOME_COLUMNS:
+        column = getattr(out, key)
+        if column is not None:
+            columns[key] = column
+            numeric(frame, column, key, ref)
+
+    def fail(mask, role, what, hint):
+        raise DataError(f"{role} column {columns[role]!r} {what} in {ref.text(mask)}", where=ref.where, hint=hint)
+
+    get = lambda key: None if key not in columns else frame[columns[key]].to_numpy(dtype=float)  # noqa: E731
+    rows = OutcomeRows(get("outcome"), *(get(k) for k in OUTCOME_COLUMNS))
+    get_family(out.family).check_data(rows, fail)
+
+
+def _check_predictors(spec, frame, ref: RowRef) -> dict:
+    categorical = {}
+    for i, p in enumerate(spec.predictors):
+        values = frame[p.column]
+        is_numeric = pd.api.types.is_numeric_dtype(values) and not pd.api.types.is_bool_dtype(values)
+        kind = p.type if p.type != "auto" else ("numeric" if is_numeric and p.reference is None else "categorical")
+        if kind == "numeric":
+            if p.reference is not None:
+                raise SpecError("'reference' applies to categorical predictors only",
+                                where=spec.where(f"predictors[{i}].reference"),
+                                hint="remove it, or set type: categorical")
+            values = numeric(frame, p.column, "predictor", ref)
+            if np.ptp(values) == 0:
+                raise DataError(f"predictor {p.column!r} has the same value ({values[0]:g}) in every row",
+                                where=ref.where, hint="a predictor that never changes cannot be estimated; remove it")
+            continue
+        labels = values.astype(str).str.strip()
+        frame[p.column] = labels
+        levels = sorted(labels.unique())
+        if len(levels) < 2:
+            raise DataError(f"categorical predictor {p.column!r} has a single level {levels[0]!r}",
+                            where=ref.where, hint="a predictor that never changes cannot be estimated; remove it")
+        reference = levels[0] if p.reference is None else str(p.reference)
+        if reference not in levels:
+            raise SpecError(f"reference level {reference!r} does not occur in column {p.column!r}",
+                            where=spec.where(f"predictors[{i}].reference"), hint=choices_hint(reference, levels))
+        categorical[p.column] = [reference] + [lv for lv in levels if lv != reference]
+    for f in spec.factors:
+        for i, term in enumerate(f.varying):
+            if term == "intercept":
+                continue
+            if term in categorical:
+                raise SpecError(f"varying slope {term!r} is categorical; only numeric slopes can vary",
+                                where=spec.where(f"groups.{f.name}.varying[{i}]"),
+                                hint="add a numeric 0/1 column for the contrast you want to vary")
+            numeric(frame, term, "varying slope", ref)
+        for col in f.predictors:
+            numeric(frame, col, "group-level predictor", ref)
+    return categorical
+
+
+def _check_groups(spec, labels: dict, path) -> None:
+    for f in spec.factors:
+        levels = pd.unique(labels[f.name])
+        if len(levels) < 2:
+            raise DataError(f"grouping factor {f.name!r} (column {f.column!r}) has only one group "
+                            f"{levels[0]!r}", where=str(path),
+                            hint="partial pooling needs at least 2 groups; remove the factor or add data")
+
+
+def _check_group_predictors(spec, frame, labels, path) -> None:
+    for f in spec.factors:
+        for col in f.predictors:
+            varying = varying_within(frame[col].to_numpy(dtype=float), labels[f.name])
+            if len(varying):
+                g, lo, hi = varying[0]
+                raise DataError(f"group-level predictor {col!r} is not constant within {f.name} {g!r} "
+                                f"(from {lo:g} to {hi:g}; {len(varying)} group(s) affected)",
+                                where=f"{spec.where(f'groups.{f.name}.predictors')} -> {path}",
+                                hint="group-level predictors take one value per group; "
+                                     "list a row-level column under 'predictors' instead")
+
+
+def varying_within(values: np.ndarray, labels) -> list:
+    """``(group, min, max)`` of every group whose values are not constant (relative tolerance 1e-9)."""
+    spread = pd.Series(values).groupby(pd.Series(labels, dtype=object), sort=False).agg(["min", "max"])
+    bad = (spread["max"] - spread["min"]).abs().to_numpy() > 1e-9 * np.maximum(1.0, spread["max"].abs().to_numpy())
+    return [(g, spread.loc[g, "min"], spread.loc[g, "max"]) for g in spread.index[bad]]

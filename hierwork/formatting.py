@@ -1,0 +1,74 @@
+"""One way to show a number, everywhere hierwork prints one.
+
+Significant figures (4 by default), thousands separators for large whole
+numbers, and no exponent between 1e-3 and 1e6 (the range of the estimates,
+diagnostics and probabilities users read). :func:`number_against` adds digits
+until a value that differs from its threshold also *reads* differently, so a
+failing R-hat of 1.0104 never shows as ``1.01 > 1.01``.
+"""
+from __future__ import annotations
+
+import math
+
+__all__ = ["number", "number_against", "share"]
+
+#: Below this magnitude (and from ``_LARGE`` up) a number is written with an exponent.
+_SMALL, _LARGE = 1e-3, 1e6
+
+
+def number(value, digits: int = 4) -> str:
+    """``value`` with ``digits`` significant figures; ``-`` for missing values.
+
+    Whole numbers are written in full (with thousands separators from 10,000);
+    booleans as ``yes``/``no``; text is returned unchanged.
+    """
+    if value is None:
+        return "-"
+    if isinstance(value, str):
+        return value or "-"
+    if isinstance(value, bool):
+        return "yes" if value else "no"
+    value = float(value)
+    if math.isnan(value):
+        return "-"
+    if math.isinf(value):
+        return "inf" if value > 0 else "-inf"
+    magnitude = abs(value)
+    if value == int(value) and magnitude < 1e15:
+        return f"{int(value):,}" if magnitude >= 10_000 else str(int(value))
+    if magnitude != 0 and (magnitude < _SMALL or magnitude >= _LARGE):
+        return f"{value:.{digits - 1}e}"
+    if magnitude >= 10_000:
+        return f"{value:,.0f}"
+    text = f"{value:.{digits}g}"
+    return text if "e" not in text else f"{value:.{max(digits - 1 - int(math.floor(math.log10(magnitude))), 0)}f}"
+
+
+def number_against(value, threshold, digits: int = 4) -> str:
+    """``value`` with enough digits to differ visibly from ``threshold`` when it differs."""
+    text = number(value, digits)
+    if value is None or threshold is None or isinstance(value, (str, bool)):
+        return text
+    try:
+        differs = float(value) != float(threshold)
+    except (TypeError, ValueError):
+        return text
+    extra = digits
+    while differs and text == number(threshold, extra) and extra < 12:
+        extra += 1
+        text = number(value, extra)
+    return text
+
+
+def share(value) -> str:
+    """A proportion as a percentage: ``12%``, ``0.4%``, ``<0.1%``; ``-`` when missing."""
+    if value is None or (isinstance(value, float) and math.isnan(value)):
+        return "-"
+    pct = 100 * float(value)
+    if pct == 0:
+        return "0%"
+    if pct < 0.1:
+        return "<0.1%"
+    if pct < 10 and round(pct) != pct:
+        return f"{pct:.1f}%"
+    return f"{pct:.0f}%"

@@ -1,0 +1,85 @@
+"""Which exact model path a plan takes, and how much work its likelihood is per gradient.
+
+* ``collapsed``: normal outcome whose factors form one nesting chain (one
+  factor, or plot within farm within region ...): every level's effects are
+  integrated out (:mod:`hierwork.model.collapsed`);
+* ``reduced``: normal outcome with crossed factors (or none): the group effects
+  are sampled, the likelihood evaluated from per-cell sufficient statistics,
+  exact and O(cells) (:func:`hierwork.model.rowwise.reduced_normal_likelihood`);
+* ``plain``: every other family, the per-row model.
+
+The spec's ``sampling.path`` may ask for a slower exact path than the best one,
+never a faster one that does not apply. Light: NumPy only, so ``check`` reads
+the decision without importing PyMC.
+"""
+from __future__ import annotations
+
+import numpy as np
+
+from hierwork.errors import SpecError
+
+#: Paths from fastest to most general.
+ORDER = ("collapsed", "reduced", "plain")
+
+
+def nesting_chain(plan) -> list | None:
+    """The plan's factors finest first if they form one nesting chain, else None."""
+    by_parent = {}
+    for f in plan.factors:
+        by_parent.setdefault(f.parent, []).append(f)
+    if not plan.factors or any(len(kids) > 1 for kids in by_parent.values()):
+        return None
+    chain = [by_parent[None][0]]
+    while chain[-1].name in by_parent:
+        chain.append(by_parent[chain[-1].name][0])
+    return chain[::-1] if len(chain) == len(plan.factors) else None
+
+
+def best_path(plan) -> tuple[str, str]:
+    """The fastest exact path for a plan, and why: ``(path, reason)``."""
+    if not plan.family.exact_normal:
+        return "plain", f"{plan.family.name} outcome: the group effects have no closed-form marginal"
+    if not plan.factors:
+        return "reduced", "no grouping factor: likelihood from sufficient statistics"
+    if nesting_chain(plan) is not None:
+        what = "one grouping factor" if len(plan.factors) == 1 else "nested factors"
+        return "collapsed", (f"normal outcome with {what}: group effects integrated out exactly, "
+                             "then drawn from their conditional normal")
+    return "reduced", ("normal outcome with crossed factors: likelihood from per-cell sufficient "
+                       "statistics, group effects sampled")
+
+
+def resolve_path(spec, plan) -> tuple[str, str]:
+    """The spec's ``sampling.path``, or the fastest exact one that applies."""
+    best, reason = best_path(plan)
+    requested = spec.sampling["path"]
+    if requested in ("auto", best):
+        return best, reason
+    if ORDER.index(requested) < ORDER.index(best):
+        raise SpecError(f"path {requested!r} does not apply to this model: {reason}",
+                        where=spec.where("sampling.path"), hint=f"use 'auto' or {best!r}")
+    return requested, "set in the spec"
+
+
+def likelihood_size(plan, path: str) -> int:
+    """Terms the likelihood sums per gradient: rows, cells of crossed groups, or groups."""
+    if path == "plain" or not plan.factors:
+        return plan.n
+    if path == "reduced":
+        return len(np.unique(np.column_stack([f.index for f in plan.factors]), axis=0))
+    return max(f.n_groups for f in plan.factors)
+
+
+# Above this many likelihood terms x columns, nutpie's faster gradient loop is
+# expected to outweigh its longer compile. A starting point, not yet tuned by
+# measurement (benchmarks/bench_scale.py can compare the engines).
+NUTPIE_FROM_CELLS = 200_000
+
+
+def choose_engine(requested: str, cells: int) -> tuple[str, str]:
+    """Return (engine, reason) for a requested engine and a problem size."""
+    if requested != "auto":
+        return requested, "set in the spec or on the command line"
+    if cells > NUTPIE_FROM_CELLS:
+        return "nutpie", f"{cells:,} data cells > {NUTPIE_FROM_CELLS:,}: gradient time dominates"
+    return "pymc", f"{cells:,} data cells <= {NUTPIE_FROM_CELLS:,}: compile time dominates"

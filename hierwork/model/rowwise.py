@@ -1,0 +1,161 @@
+"""ModelPlan -> ``pymc.Model`` with every group effect sampled (the plain and reduced paths).
+
+Parameterisations of a factor's effects (``L`` the Cholesky factor of their
+covariance; see :mod:`hierwork.model.blocks` for the centring of predictors):
+
+* non-centred: ``z ~ N(0, I)``, effects ``= z (A L)'``;
+* centred, the only factor of the model: its group coefficients
+  ``c_j ~ N(A (b_T + W_j gamma), A S A')`` replace ``b_T + u_j`` in every row
+  (hierarchical centring, Gelfand, Sahu and Carlin 1995, Biometrika 82,
+  479-488);
+* centred, one of several factors: the offsets are sampled directly,
+  ``u_j ~ N(0, A S A')`` (letting one of several crossed or nested factors carry
+  the population values would tie its coefficients to the other factors'
+  effects, a ridge the sampler crawls along).
+
+``build_model(plan, centre=False)`` gives the same model without centring
+and with every factor non-centred, which prior predictive simulation uses
+(every variable then has a proper generative prior). On the reduced path
+(normal outcomes) the likelihood is evaluated from per-cell sufficient
+statistics instead of per row, with the same log density.
+"""
+from __future__ import annotations
+
+from hierwork import runtime  # noqa: F401  (before PyTensor)
+
+import numpy as np
+import pymc as pm
+import pytensor.tensor as pt
+
+from hierwork.model import marginal
+from hierwork.model.blocks import (coords_of, factor_scales, family_extras, group_predictor_term,
+                                   population_block, shift_matrix)
+from hierwork.model.cells import cell_index, cell_stats
+from hierwork.plan.plan import ModelPlan
+
+
+def build_model(plan: ModelPlan, centre: bool = True, reduced: bool = False) -> pm.Model:
+    """Build the PyMC model of a plan with every group effect sampled.
+
+    Parameters
+    ----------
+    plan : ModelPlan
+    centre : bool
+        Sample with predictors centred (exact change of variables) and each
+        factor in its planned form (default). ``False`` gives the generative
+        form, uncentred and every factor non-centred, for prior simulation.
+    reduced : bool
+        Normal outcomes only: evaluate the likelihood from per-cell sufficient
+        statistics (exact, O(cells) per gradient) instead of per row.
+
+    Returns
+    -------
+    pymc.Model
+    """
+    with pm.Model(coords=coords_of(plan)) as model:
+        b, means = population_block(plan, centre)
+        extras = family_extras(plan)
+        anchored: set = set()
+        parts = []  # (factor, per-group values in data units multiplying its varying columns, shift)
+        for f in plan.factors:
+            sd, chol = factor_scales(f, plan)
+            shift = group_predictor_term(f, plan)
+            A = shift_matrix(f, means)
+            to_data = np.linalg.inv(A).T  # row vectors at centred x -> at x = 0
+            chol_c = pt.dot(A, chol)
+            dims = (f.name, f"{f.name}__term")
+            shape = (f.n_groups, len(f.varying))
+            form = f.parameterisation if centre else "non_centred"  # generative form for prior simulation
+            if form == "centred" and len(plan.factors) == 1:
+                mean = pt.broadcast_to(b[list(f.varying_cols)], shape)  # data units: b_T + W gamma
+                if shift is not None:
+                    mean = pt.set_subtensor(mean[:, 0], mean[:, 0] + shift)
+                mean = pt.dot(mean, A.T)  # at centred x
+                start = np.zeros(shape)
+                start[:, 0] = plan.priors["intercept"].params.get("mu", 0.0)
+                coef = _centred(f"{f.name}__coef", mean, sd, chol_c, dims, start)
+                effect_c = coef - mean
+                parts.append((f, pt.dot(coef, to_data), None))
+                anchored.update(f.varying_cols)
+            else:
+                if form == "centred":
+                    effect_c = _centred(f"{f.name}__u", pt.zeros(shape), sd, chol_c, dims, np.zeros(shape))
+                else:
+                    effect_c = pt.dot(pm.Normal(f"{f.name}__z", 0.0, 1.0, dims=dims), chol_c.T)
+                parts.append((f, pt.dot(effect_c, to_data), shift))
+            pm.Deterministic(f"{f.name}__effect", pt.dot(effect_c, to_data), dims=dims)
+        free = [k for k in range(plan.X.shape[1]) if k not in anchored]
+        if reduced:
+            reduced_normal_likelihood(plan, b, free, parts, extras.get("residual_sd"))
+        else:
+            eta = pt.dot(plan.X[:, free], b[free]) if free else pt.zeros(plan.n)
+            for f, values, shift in parts:
+                eta = eta + (values[f.index] * plan.X[:, list(f.varying_cols)]).sum(axis=1)
+                if shift is not None:
+                    eta = eta + shift[f.index]
+            likelihood(plan, eta, extras)
+    return model
+
+
+def _centred(name, mean, sd, chol, dims, start):
+    """Group values sampled directly: ``N(mean_j, chol chol')`` for every group ``j``.
+
+    With several terms the density is written out with one triangular solve
+    for all groups (a batched multivariate normal solves once per group, which
+    is many times slower); the values are then a flat variable plus that
+    density, which is the same distribution.
+    """
+    if len(pm.modelcontext(None).coords[dims[1]]) == 1:
+        return pm.Normal(name, mu=mean, sigma=sd, dims=dims)
+    value = pm.Flat(name, dims=dims, initval=start)
+    z = pt.linalg.solve_triangular(chol, (value - mean).T, lower=True)
+    J, q = start.shape
+    pm.Potential(f"{name}_density", -0.5 * pt.sum(z ** 2) - J * pt.sum(pt.log(pt.diag(chol)))
+                 - 0.5 * J * q * np.log(2 * np.pi))
+    return value
+
+
+def likelihood(plan: ModelPlan, eta, extras) -> None:
+    """Add the observed outcome ``y`` given the linear predictor ``eta`` (per row), by the plan's family.
+
+    The outcome enters as data (``y_data``), so a compiled model can be refitted
+    to new outcomes of the same design without recompiling (nutpie's
+    ``with_data``), as simulation-based calibration does.
+    """
+    plan.family.likelihood(eta, pm.Data("y_data", plan.y), plan.outcome, extras)
+
+
+def reduced_normal_likelihood(plan: ModelPlan, b, free_cols, parts, sigma) -> None:
+    """Add the normal likelihood from per-cell statistics (the reduced path).
+
+    Gives the same log density as the per-row ``pm.Normal`` whose mean is
+    ``X[:, free_cols] @ b[free_cols] + sum(values[f.index] * X[:, f.varying_cols])
+    + shift[f.index]`` summed over ``parts``.
+
+    Parameters
+    ----------
+    plan : ModelPlan
+        Normal family.
+    b : (p,) tensor
+        Population coefficients.
+    free_cols : list of int
+        Columns of ``X`` whose coefficient is ``b`` (the others are carried by a
+        centred factor's group coefficients).
+    parts : list of (FactorPlan, values, shift)
+        ``values`` (J_f, q_f) multiplies the factor's varying columns; ``shift``
+        (J_f,) or None is added to the linear predictor of its rows.
+    sigma : scalar tensor or None
+        ``residual_sd`` (None with known SDs).
+    """
+    cell, cell_groups = cell_index(*[f.index for f, _, _ in parts]) if parts else (
+        np.zeros(plan.n, dtype=np.int64), np.zeros((1, 0), dtype=np.int64))
+    stats = cell_stats(plan.y, plan.X, cell, len(cell_groups), plan.known_sd)
+    mask = np.zeros(plan.X.shape[1])
+    mask[list(free_cols)] = 1.0
+    effects = []
+    for k, (f, values, shift) in enumerate(parts):
+        effects.append((values, tuple(f.varying_cols), cell_groups[:, k]))
+        if shift is not None:
+            effects.append((shift[:, None], (0,), cell_groups[:, k]))
+    loglik = marginal.reduced_loglik(stats, b * mask, effects, sigma)
+    pm.Potential("y_reduced", loglik.sum())

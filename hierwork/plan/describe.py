@@ -1,0 +1,92 @@
+"""The plan for people and for files: the text ``hierwork check`` prints, and ``plan.json``.
+
+The text has three parts: what is modelled (data, outcome, terms), one small
+table per grouping factor (how many groups and how large they are), the priors
+(defaults marked), and then every decision hierwork took for the fit, each
+with its reason.
+"""
+from __future__ import annotations
+
+import numpy as np
+
+from hierwork.formatting import number
+
+#: Columns of the per-factor table.
+_SIZE_HEADINGS = ("groups", "smallest", "median", "largest", "one-row groups")
+
+
+def group_sizes(f) -> dict:
+    """Size summary of one factor's groups (rows per group)."""
+    s = f.sizes
+    return {"groups": int(f.n_groups), "smallest": int(s.min()), "median": float(np.median(s)),
+            "largest": int(s.max()), "one_row_groups": int((s == 1).sum())}
+
+
+def plan_as_dict(plan, decisions: dict | None = None) -> dict:
+    """The resolved plan as JSON-ready data (``plan.json`` in the run folder)."""
+    return {
+        "format": "hierwork-plan/1",
+        "rows": plan.n,
+        "family": plan.family.name,
+        "link": plan.family.link,
+        "terms": list(plan.terms),
+        "design": plan.design.to_dict(),
+        "factors": [{
+            "name": f.name, "column": f.column, "groups": f.n_groups, "within": f.parent,
+            "varying": list(f.varying), "predictors": list(f.predictors), "sizes": group_sizes(f),
+            "parameterisation": f.parameterisation, "reason": f.reason,
+        } for f in plan.factors],
+        "priors": {k: p.to_dict() for k, p in plan.priors.items()},
+        "notes": list(plan.notes),
+        **(decisions or {}),
+    }
+
+
+def _size_table(f) -> list[str]:
+    sizes = group_sizes(f)
+    values = [number(v) for v in sizes.values()]
+    widths = [max(len(h), len(v)) for h, v in zip(_SIZE_HEADINGS, values)]
+    return ["    " + "  ".join(h.rjust(w) for h, w in zip(_SIZE_HEADINGS, widths)),
+            "    " + "  ".join(v.rjust(w) for v, w in zip(values, widths))]
+
+
+def describe(plan, decisions: list) -> str:
+    """Readable plan.
+
+    Parameters
+    ----------
+    plan : ModelPlan
+    decisions : list of (what, choice, reason)
+        Choices made for the fit (path, engine), shown after each factor's form.
+    """
+    spec = plan.spec
+    outcome = spec.outcome
+    extras = [f"{k} {getattr(outcome, k)!r}" for k in ("trials", "exposure", "known_sd") if getattr(outcome, k)]
+    lines = [f"{spec.path}: {spec.title} ({spec.name})",
+             f"  data     {spec.data_path} ({plan.n:,} rows used)",
+             f"  outcome  {outcome.column}: {plan.family.name}, {plan.family.link} link"
+             + (f" ({'; '.join(extras)})" if extras else ""),
+             f"  terms    {', '.join(plan.terms)}"]
+    for f in plan.factors:
+        nest = f", nested in {f.parent}" if f.parent else ""
+        lines += ["", f"factor {f.name} (column {f.column!r}{nest}): rows per group", *_size_table(f),
+                  f"    varies: {', '.join(f.varying)}"
+                  + (f"; group-level predictors: {', '.join(f.predictors)}" if f.predictors else "")]
+    lines += ["", "priors (* = default, scaled to the data: rule in the README, derivation in plan.json)"]
+    width = max(len(k) for k in plan.priors)
+    for key, prior in plan.priors.items():
+        lines.append(f"  {'*' if prior.default else ' '} {key:<{width}}  {prior.text()}")
+    lines += ["", "decisions"]
+    rows = list(decisions)
+    collapsed = any(what == "path" and choice == "collapsed" for what, choice, _ in decisions)
+    for f in plan.factors:
+        form = f.parameterisation.replace("_", "-")
+        if collapsed:
+            rows.append((f"{f.name} effects", "integrated out",
+                         f"exact on the collapsed path (if sampled: {form}, {f.reason})"))
+        else:
+            rows.append((f"{f.name} effects", f"sampled {form}", f.reason))
+    width = max(len(what) for what, _, _ in rows)
+    lines += [f"  {what:<{width}}  {choice}: {reason}" for what, choice, reason in rows]
+    lines += [f"note: {note}" for note in plan.notes]
+    return "\n".join(lines)

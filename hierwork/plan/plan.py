@@ -1,0 +1,173 @@
+"""Spec + Dataset -> :class:`ModelPlan`: arrays, terms, priors and parameterisation.
+
+The plan is everything the model builders need and nothing they must work
+out: the family, the population design matrix in the data's own units (and the
+:class:`~hierwork.plan.design.Design` that made it), each factor's group index
+and labels, the varying columns, group-level predictors, the nesting map,
+resolved priors (defaults marked) and the sampling form of each factor.
+"""
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import numpy as np
+import pandas as pd
+
+from hierwork.plan import parameterisation, priors
+from hierwork.plan.design import Design
+from hierwork.plan.families import get_family
+from hierwork.plan.families.base import Family, OutcomeRows
+
+
+@dataclass(frozen=True)
+class FactorPlan:
+    """One grouping factor, ready to model.
+
+    Attributes
+    ----------
+    name, column : str
+    levels : tuple of str
+        Group labels (composed with the parents' for nested factors), in first-seen order.
+    index : ndarray (n,)
+        Group of each row (into ``levels``).
+    sizes : ndarray (J,)
+        Rows per group.
+    varying : tuple of str
+        Varying terms, ``"intercept"`` first.
+    varying_cols : tuple of int
+        Columns of the population design ``X`` that the varying terms multiply.
+    predictors : tuple of str
+        Group-level predictors; their values per group are the rows of ``W`` (J, r).
+    parent : str or None
+        Factor this one is nested in; ``parent_index`` (J,) maps groups to parent groups.
+    parameterisation, reason : str
+        ``"centred"`` or ``"non_centred"`` and why.
+    """
+
+    name: str
+    column: str
+    levels: tuple
+    index: np.ndarray
+    sizes: np.ndarray
+    varying: tuple
+    varying_cols: tuple
+    predictors: tuple
+    W: np.ndarray
+    parent: str | None
+    parent_index: np.ndarray | None
+    parameterisation: str
+    reason: str
+
+    @property
+    def n_groups(self) -> int:
+        return len(self.levels)
+
+
+@dataclass(frozen=True)
+class ModelPlan:
+    """Everything needed to build and fit the model, in the data's own units."""
+
+    spec: object
+    family: Family
+    outcome: OutcomeRows
+    design: Design
+    X: np.ndarray
+    factors: tuple
+    priors: dict
+    notes: tuple = field(default_factory=tuple)
+    data_sha256: str = ""
+
+    @property
+    def terms(self) -> tuple:
+        return self.design.names
+
+    @property
+    def y(self) -> np.ndarray:
+        return self.outcome.y
+
+    @property
+    def trials(self):
+        return self.outcome.trials
+
+    @property
+    def exposure(self):
+        return self.outcome.exposure
+
+    @property
+    def known_sd(self):
+        return self.outcome.known_sd
+
+    @property
+    def n(self) -> int:
+        return len(self.outcome.y)
+
+    def factor(self, name: str) -> FactorPlan:
+        return next(f for f in self.factors if f.name == name)
+
+
+def make_plan(spec, dataset) -> ModelPlan:
+    """Turn a validated spec and dataset into a :class:`ModelPlan`.
+
+    Parameters
+    ----------
+    spec : Spec
+    dataset : Dataset
+
+    Returns
+    -------
+    ModelPlan
+    """
+    frame = dataset.frame
+    family = get_family(spec.outcome.family)
+    rows = dataset.outcome_rows(spec.outcome)
+    design = Design.from_spec(spec, dataset)
+    X = design.matrix(frame)
+    z, var = family.working_response(rows)
+    factor_plans = []
+    for f in _parents_first(spec.factors):
+        factor_plans.append(_factor_plan(f, frame, dataset.labels[f.name], X, design, factor_plans, z, var))
+
+    centre, spread = family.link_centre_spread(rows)
+    term_stats = {name: (float(X[:, k].mean()), float(np.ptp(X[:, k])))
+                  for k, name in enumerate(design.names) if k > 0}
+    factors = [(fp.name, fp.varying, {col: (float(fp.W[:, k].mean()), float(np.ptp(fp.W[:, k])))
+                                      for k, col in enumerate(fp.predictors)}) for fp in factor_plans]
+    resolved = priors.default_priors(family, rows, term_stats, centre, spread, factors)
+    priors.check_lkj_keys(spec)
+    resolved = priors.apply_user_priors(resolved, spec, design.level_terms())
+    return ModelPlan(spec=spec, family=family, outcome=rows, design=design, X=X, factors=tuple(factor_plans),
+                     priors=resolved, notes=design.notes, data_sha256=dataset.sha256)
+
+
+def _factor_plan(f, frame, labels, X, design, done, z, var) -> FactorPlan:
+    codes, uniques = pd.factorize(labels)
+    codes = codes.astype(np.int64)
+    sizes = np.bincount(codes, minlength=len(uniques))
+    W = np.zeros((len(uniques), len(f.predictors)))
+    for k, col in enumerate(f.predictors):
+        W[:, k] = pd.Series(frame[col].to_numpy(dtype=float)).groupby(codes).first().to_numpy()
+    parent_index = None
+    if f.within is not None:
+        parent = next(p for p in done if p.name == f.within)
+        parent_index = pd.Series(parent.index).groupby(codes).first().to_numpy().astype(np.int64)
+    judged = [("intercept", *parameterisation.informativeness(z, var, codes, len(uniques)))]
+    for term in f.varying[1:]:
+        x = X[:, design.index(term)]
+        judged.append((term, *parameterisation.slope_informativeness(z, x, codes, len(uniques))))
+    form, reason = parameterisation.choose(f.parameterisation, judged)
+    return FactorPlan(name=f.name, column=f.column, levels=tuple(str(u) for u in uniques), index=codes,
+                      sizes=sizes, varying=f.varying, varying_cols=tuple(design.index(t) for t in f.varying),
+                      predictors=f.predictors, W=W, parent=f.within, parent_index=parent_index,
+                      parameterisation=form, reason=reason)
+
+
+def _parents_first(factors) -> list:
+    done, order = set(), []
+    pending = list(factors)
+    while pending:
+        for f in list(pending):
+            if f.within is None or f.within in done:
+                order.append(f)
+                done.add(f.name)
+                pending.remove(f)
+    return order

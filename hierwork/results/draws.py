@@ -1,0 +1,130 @@
+"""Posterior draws and the rows they are applied to: the linear predictor of any draw and row.
+
+Every path (plain, reduced, collapsed) stores the same posterior variables, so
+the linear predictor of any draw is computed here once, in NumPy, the same way
+for all of them (``F__effect`` is the offset from the population value, also
+for the factor that carries the population values on the centred path)::
+
+    eta = X b + sum_F (effect_F[index_F] * X[:, varying_F]).sum(-1) + (W_F gamma_F)[index_F]
+
+The family then adds its offset (log exposure) and gives densities, simulated
+outcomes and means. Work is streamed over row chunks of about
+:data:`CHUNK_CELLS` numbers.
+"""
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+
+from hierwork.plan.families.base import OutcomeRows
+
+#: Draws x rows handled at once while streaming over rows.
+CHUNK_CELLS = 2_000_000
+
+
+@dataclass
+class Draws:
+    """Posterior (or prior) draws flattened over chains: ``D`` draws.
+
+    ``effects[F]`` (D, J, q), ``gammas[F]`` (D, r), ``params`` the family's own
+    parameters (D,).
+    """
+
+    b: np.ndarray
+    effects: dict
+    gammas: dict
+    params: dict
+    shape: tuple  # (chains, draws per chain)
+
+    @property
+    def n(self) -> int:
+        return self.b.shape[0]
+
+    def subset(self, index: np.ndarray) -> "Draws":
+        """The draws at ``index`` (flat positions), as one chain unless all are kept."""
+        if len(index) == self.n:
+            return self
+        return Draws(self.b[index], {k: v[index] for k, v in self.effects.items()},
+                     {k: v[index] for k, v in self.gammas.items()},
+                     {k: v[index] for k, v in self.params.items()}, (1, len(index)))
+
+    def family_params(self) -> dict:
+        """The family parameters shaped ``(D, 1)`` to broadcast over rows."""
+        return {k: v[:, None] for k, v in self.params.items()}
+
+
+def draws_of(group, factors, parameters) -> Draws:
+    """Flatten an InferenceData group (posterior or prior) into :class:`Draws`.
+
+    Parameters
+    ----------
+    group : xarray.Dataset
+    factors : sequence
+        Objects with ``name`` and ``predictors`` (FactorPlan, or plan.json entries as dicts).
+    parameters : sequence of str
+        The family's parameter names (those absent from ``group`` are skipped).
+    """
+    def flat(name):
+        v = np.asarray(group[name].values, dtype=float)
+        return v.reshape((-1,) + v.shape[2:])
+
+    names = [f.name if hasattr(f, "name") else f["name"] for f in factors]
+    preds = [f.predictors if hasattr(f, "predictors") else f["predictors"] for f in factors]
+    return Draws(b=flat("b"),
+                 effects={n: flat(f"{n}__effect") for n in names},
+                 gammas={n: flat(f"{n}__gamma") for n, p in zip(names, preds) if p},
+                 params={k: flat(k) for k in parameters if k in group},
+                 shape=(group.sizes["chain"], group.sizes["draw"]))
+
+
+@dataclass
+class Rows:
+    """The rows to evaluate: design, group of each row per factor, outcome columns.
+
+    ``groups`` is a list of ``(factor name, index (n,), varying columns of X,
+    W (J, r) or None)``; indices point into the draws' effect arrays.
+    """
+
+    X: np.ndarray
+    groups: list
+    outcome: OutcomeRows
+
+    @property
+    def n(self) -> int:
+        return self.X.shape[0]
+
+
+def rows_of(plan) -> Rows:
+    """The fitted rows of a plan."""
+    return Rows(plan.X, [(f.name, f.index, list(f.varying_cols), f.W if f.predictors else None)
+                         for f in plan.factors], plan.outcome)
+
+
+def linear_predictor(draws: Draws, rows: Rows, sl: slice = slice(None)) -> np.ndarray:
+    """``eta`` (D, m) of the rows ``sl`` for every draw (without exposure offset)."""
+    X = rows.X[sl]
+    eta = draws.b @ X.T
+    for name, index, cols, W in rows.groups:
+        idx = index[sl]
+        eta += np.einsum("dmq,mq->dm", draws.effects[name][:, idx, :], X[:, cols])
+        if W is not None:
+            eta += (draws.gammas[name] @ W.T)[:, idx]
+    return eta
+
+
+def chunks(n_draws: int, n_rows: int):
+    """Row slices of about :data:`CHUNK_CELLS` draws x rows each."""
+    step = max(1, CHUNK_CELLS // max(n_draws, 1))
+    for start in range(0, n_rows, step):
+        yield slice(start, min(start + step, n_rows))
+
+
+def pointwise_log_likelihood(draws: Draws, rows: Rows, family) -> np.ndarray:
+    """Log density (D, n) of each observed row at each draw."""
+    ll = np.empty((draws.n, rows.n))
+    params = draws.family_params()
+    for sl in chunks(draws.n, rows.n):
+        eta = linear_predictor(draws, rows, sl)
+        ll[:, sl] = family.log_density(rows.outcome.y[sl], eta, rows.outcome.rows(sl), params)
+    return ll

@@ -1,0 +1,228 @@
+"""PSIS-LOO across the pooling spectrum: partial, complete and no pooling of one spec.
+
+Expected log predictive density by Pareto-smoothed importance sampling
+leave-one-out (Vehtari, Gelman and Gabry 2017, "Practical Bayesian model
+evaluation using leave-one-out cross-validation and WAIC", Statistics and
+Computing 27, 1413-1432), computed by ``arviz.loo`` and ranked by
+``arviz.compare``. A Pareto k above 0.7 marks a row whose LOO estimate is
+unreliable (same paper, §2.1); ArviZ's sample-size-dependent threshold
+``min(1 - 1/log10(S), 0.7)`` is stored beside it.
+
+The three models share family, population terms and default priors:
+
+* **partial pooling**: the run's own posterior;
+* **complete pooling**: no grouping factors; group-level predictors enter as
+  row predictors (each row gets its group's value), with the priors they had;
+* **no pooling**: the factor with the most groups gets its own coefficient per
+  group and varying term, each with the population prior of that term and no
+  hierarchy (no shared SD); other factors are left out (nested parents are
+  absorbed by the group coefficients) and so are group-level predictors of
+  that factor and its ancestors (constant within groups, absorbed too); other
+  factors' group-level predictors enter as row predictors.
+
+The baselines are fitted with PyMC by NUTS from the spec's sampling settings
+with at most 1000 warm-up and 1000 kept draws per chain. This costs two more
+(small) fits, so it runs only with ``estimates.compare_pooling: true``; the
+partial-pooling LOO alone (no extra fit) is always in ``loo.json``.
+"""
+from __future__ import annotations
+
+import dataclasses
+import io
+import json
+import warnings
+
+from hierwork import runtime  # noqa: F401  (before ArviZ)
+
+import arviz as az
+import numpy as np
+import xarray as xr
+
+from hierwork.inference import seeds
+from hierwork.inference.convergence import ess_mean
+from hierwork.plan.design import Design, Term
+from hierwork.plan.plan import ModelPlan
+from hierwork.results.draws import draws_of, pointwise_log_likelihood, rows_of
+from hierwork.results import predictive
+
+#: Pareto k above which a row's PSIS-LOO estimate is unreliable (Vehtari, Gelman and Gabry 2017).
+PARETO_K_BAD = 0.7
+#: Cap on warm-up and kept draws per chain of the baseline fits.
+BASELINE_MAX_DRAWS = 1000
+MODELS = ("partial_pooling", "complete_pooling", "no_pooling")
+
+
+def _row_predictor_priors(plan: ModelPlan, factors) -> tuple:
+    """Columns, term names and priors for the group-level predictors of ``factors`` at row level."""
+    cols, terms, priors = [], [], {}
+    for f in factors:
+        for k, col in enumerate(f.predictors):
+            term = col if col not in plan.terms else f"{f.name}.{col}"
+            cols.append(f.W[f.index, k])
+            terms.append(term)
+            priors[term] = plan.priors[f"{f.name}.{col}"]
+    return cols, terms, priors
+
+
+def complete_pooling_plan(plan: ModelPlan) -> ModelPlan:
+    """The same spec without grouping factors; group-level predictors become row predictors."""
+    cols, terms, priors = _row_predictor_priors(plan, plan.factors)
+    X = np.column_stack([plan.X] + cols) if cols else plan.X
+    return dataclasses.replace(plan, X=X, design=_design(plan.terms + tuple(terms)), factors=(),
+                               priors={**plan.priors, **priors})
+
+
+def no_pooling_plan(plan: ModelPlan) -> ModelPlan:
+    """Each group of the finest factor its own coefficients, with the population priors; no hierarchy.
+
+    The model is meant for ``build_model(..., centre=False)``: its first column is
+    the first group's intercept indicator, with the population intercept's prior.
+    """
+    f = max(plan.factors, key=lambda g: g.n_groups)
+    absorbed = {f.name}
+    node = f
+    while node.parent is not None:
+        node = plan.factor(node.parent)
+        absorbed.add(node.name)
+    onehot = np.zeros((plan.n, f.n_groups))
+    onehot[np.arange(plan.n), f.index] = 1.0
+    cols, terms, priors = [], [], {}
+    for t, term in enumerate(f.varying):
+        x = plan.X[:, f.varying_cols[t]][:, None]
+        cols.append(onehot * x)
+        suffix = "" if term == "intercept" else f":{term}"
+        terms += [f"{f.name}={g}{suffix}" for g in f.levels]
+        priors.update({f"{f.name}={g}{suffix}": plan.priors[term] for g in f.levels})
+    kept = [k for k in range(1, len(plan.terms)) if k not in f.varying_cols]
+    cols.append(plan.X[:, kept])
+    terms += [plan.terms[k] for k in kept]
+    priors.update({plan.terms[k]: plan.priors[plan.terms[k]] for k in kept})
+    extra_cols, extra_terms, extra_priors = _row_predictor_priors(
+        plan, [g for g in plan.factors if g.name not in absorbed])
+    priors.update(extra_priors)
+    priors["intercept"] = plan.priors["intercept"]  # first column: the first group's intercept
+    for name in plan.family.parameters(plan.outcome):
+        priors[name] = plan.priors[name]
+    X = np.column_stack(cols + extra_cols)
+    return dataclasses.replace(plan, X=X, design=_design(tuple(terms + extra_terms)), factors=(), priors=priors)
+
+
+def _design(names) -> Design:
+    """A design naming the columns of a baseline's matrix (built here, never re-evaluated on data)."""
+    return Design(tuple(Term(name, "intercept" if k == 0 else "numeric") for k, name in enumerate(names)))
+
+
+def _fit_baseline(plan: ModelPlan, spec, seed: int, centre: bool):
+    from hierwork.inference.sampling import run_sampler
+    from hierwork.model.paths import choose_engine
+    from hierwork.model.rowwise import build_model
+
+    settings = dict(spec.sampling, seed=int(seed),
+                    draws=min(spec.sampling["draws"], BASELINE_MAX_DRAWS),
+                    warmup=min(spec.sampling["warmup"], BASELINE_MAX_DRAWS))
+    engine = choose_engine(settings["engine"], plan.n * plan.X.shape[1])[0]
+    return run_sampler(build_model(plan, centre=centre), settings, engine, progress=False)
+
+
+def _pointwise(idata, plan: ModelPlan):
+    """The posterior with the pointwise log-likelihood of ``plan``'s rows (ArviZ takes the
+    relative efficiency of the importance weights from the posterior's ESS)."""
+    draws = draws_of(idata.posterior, plan.factors, plan.family.parameters(plan.outcome))
+    ll = pointwise_log_likelihood(draws, rows_of(plan), plan.family)
+    return az.InferenceData(posterior=idata.posterior, log_likelihood=xr.Dataset(
+        {"y": (("chain", "draw", "row"), ll.reshape(draws.shape + (plan.n,)))}))
+
+
+def _loo_record(result) -> dict:
+    k = np.asarray(result.pareto_k)
+    return {"elpd_loo": float(result.elpd_loo), "se": float(result.se), "p_loo": float(result.p_loo),
+            "pareto_k_above_0.7": int((k > PARETO_K_BAD).sum()),
+            "pareto_k_threshold_arviz": float(result.good_k),
+            "pareto_k_above_arviz_threshold": int((k > result.good_k).sum()),
+            "pareto_k_max": float(k.max()), "n": int(k.size)}
+
+
+def _loo(idata, var_name: str = "y"):
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")  # Pareto k warnings are counted in loo.json instead
+        return az.loo(idata, pointwise=True, var_name=var_name, reff=relative_efficiency(idata.posterior))
+
+
+def relative_efficiency(posterior) -> float:
+    """Mean ESS of the mean over every posterior element, per draw: PSIS's ``r_eff``.
+
+    The number ArviZ's ``loo`` computes when not given one (one chain: 1), here
+    vectorised over parameters (:func:`hierwork.convergence.ess_mean`).
+    """
+    n_chains, n_draws = posterior.sizes["chain"], posterior.sizes["draw"]
+    if n_chains == 1:
+        return 1.0
+    values = [ess_mean(np.asarray(da.transpose("chain", "draw", ...).values, dtype=float)
+                       .reshape(n_chains, n_draws, -1)) for da in posterior.data_vars.values()]
+    return float(np.hstack(values).mean() / (n_chains * n_draws))
+
+
+def pooling_comparison(idata, plan: ModelPlan, spec, seed: int) -> dict:
+    """LOO of the run's own posterior and, if the spec asks, of the two baselines.
+
+    Parameters
+    ----------
+    idata : arviz.InferenceData
+        The run's posterior, with ``log_likelihood["y"]`` when within the memory
+        budget (:func:`hierwork.results.predictive.augment` adds it).
+    plan : ModelPlan
+    spec : Spec
+        ``estimates.compare_pooling`` switches the baseline fits on.
+    seed : int
+
+    Returns
+    -------
+    dict
+        File name -> text: ``loo.json`` always; ``pooling_comparison.csv`` (``model``
+        column, then the expected log predictive density of each model and its
+        differences from the best) with the comparison.
+    """
+    report = {"format": "hierwork-loo/1", "method": "PSIS-LOO (Vehtari, Gelman and Gabry 2017)",
+              "pareto_k_bad": PARETO_K_BAD, "models": {}, "notes": []}
+    ll = getattr(idata, "log_likelihood", None)
+    if ll is None or "y" not in ll:
+        top = next((f for f in plan.factors if f.parent is None), None)
+        name = None if top is None else f"y_by_{top.name}"
+        size = idata.posterior.sizes["chain"] * idata.posterior.sizes["draw"] * plan.n
+        why = (f"row-level LOO skipped: draws x rows = {size:,} exceeds the memory budget of "
+               f"{predictive.MAX_CELLS:,} numbers")
+        if ll is not None and name in ll:
+            report["models"]["partial_pooling"] = _loo_record(_loo(idata, name))
+            report["unit"] = f"{top.name} (leave one group out, effects integrated out)"
+            report["notes"].append(why + "; leave-one-group-out on the top factor instead, baselines not compared")
+        else:
+            report["notes"].append(why + "; refit with fewer draws to get it")
+        return {"loo.json": json.dumps(report, indent=2) + "\n"}
+    report["unit"] = "row"
+    fitted = {"partial_pooling": az.InferenceData(posterior=idata.posterior, log_likelihood=ll[["y"]])}
+    if spec.values["estimates"].get("compare_pooling") and plan.factors:
+        cp_seed, np_seed = seeds.child_seeds(seed, "pooling_baselines", 2)
+        cp_plan, np_plan = complete_pooling_plan(plan), no_pooling_plan(plan)
+        fitted["complete_pooling"] = _pointwise(_fit_baseline(cp_plan, spec, cp_seed, centre=True), cp_plan)
+        fitted["no_pooling"] = _pointwise(_fit_baseline(np_plan, spec, np_seed, centre=False), np_plan)
+        report["baseline_draws"] = min(spec.sampling["draws"], BASELINE_MAX_DRAWS)
+    results = {name: _loo(data) for name, data in fitted.items()}
+    report["models"] = {name: _loo_record(r) for name, r in results.items()}
+    files = {}
+    if len(results) > 1:
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            table = az.compare(results, ic="loo")
+        table = table.rename_axis("model").reset_index()
+        buf = io.StringIO()
+        table.to_csv(buf, index=False)
+        files["pooling_comparison.csv"] = buf.getvalue()
+    elif plan.factors:
+        report["notes"].append("baselines not compared: set estimates.compare_pooling: true "
+                               "(two more small fits)")
+    files["loo.json"] = json.dumps(report, indent=2, default=_plain) + "\n"
+    return files
+
+
+def _plain(value):
+    return value.item() if hasattr(value, "item") else str(value)

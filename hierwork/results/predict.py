@@ -1,0 +1,207 @@
+"""Predictions for new rows from a finished run folder.
+
+A new row's linear predictor uses the run's population terms (the design stored
+in ``plan.json``, so the columns are exactly those of the fit) and, per factor,
+its group's posterior effects when the group was fitted ("known"), or, for a
+group never seen ("new"), effects drawn for every posterior draw from the
+fitted population distribution ``N(0, S)`` with ``S = diag(sd) R diag(sd)``
+(``F__sd``, ``F__corr``); a new group's group-level predictors enter through
+``F__gamma`` as for fitted groups. Group labels follow the fit's rule
+(:mod:`hierwork.data.labels`), so plot 3 of a new farm is a new plot. The
+outcome is then drawn from the family for every draw (posterior predictive),
+streamed over row chunks.
+"""
+from __future__ import annotations
+
+from pathlib import Path
+from types import SimpleNamespace
+
+import numpy as np
+import pandas as pd
+
+from hierwork.data.labels import group_labels
+from hierwork.data.reading import is_csv, read_table, varying_within
+from hierwork.data.rows import RowRef, blank, numeric
+from hierwork.errors import DataError, RunFolderError
+from hierwork.inference import seeds
+from hierwork.plan.design import Design
+from hierwork.plan.families import get_family
+from hierwork.plan.families.base import OutcomeRows
+from hierwork.results.draws import Rows, chunks, draws_of, linear_predictor
+from hierwork.runfolder import Run
+
+#: The columns ``predict`` adds to the input rows.
+COLUMNS = ("pred_mean", "pred_sd", "pred_lower", "pred_upper", "link_mean", "link_lower", "link_upper")
+
+
+def predict(run, new_data, seed: int | None = None, interval: float | None = None) -> pd.DataFrame:
+    """Posterior predictive summaries for new rows.
+
+    Parameters
+    ----------
+    run : Run, str or Path
+        Run folder written by ``hierwork fit``.
+    new_data : pandas.DataFrame, str or Path
+        Rows to predict: the run's predictor, group and group-level predictor
+        columns (and trials / exposure / known_sd columns when the family uses
+        them); the outcome column is not needed.
+    seed : int, optional
+        Seed of the draws (default: the run's seed).
+    interval : float, optional
+        Probability of the central interval (default: the run's ``estimates.interval``).
+
+    Returns
+    -------
+    pandas.DataFrame
+        The input columns, then ``pred_mean, pred_sd, pred_lower, pred_upper``
+        (the outcome), ``link_mean, link_lower, link_upper`` (the linear
+        predictor, without exposure offset), and ``group_status`` (``known`` or
+        ``new``; ``farm=known; plot=new`` with several factors).
+
+    Raises
+    ------
+    DataError
+        Missing columns, missing or non-numeric values, unknown categorical levels.
+    HierworkError
+        An interval outside [0.5, 1).
+    """
+    from hierwork.errors import HierworkError
+
+    run = run if isinstance(run, Run) else Run.load(run)
+    if interval is not None and not 0.5 <= interval < 1:
+        raise HierworkError(f"interval must be at least 0.5 and below 1, got {interval:g}", where="interval")
+    if isinstance(new_data, (str, Path)):
+        frame = read_table(Path(new_data))
+        ref = RowRef.of(str(new_data), len(frame), is_csv(Path(new_data)))
+    else:
+        frame = new_data.copy()
+        ref = RowRef.of("new data", len(frame), csv=False)
+    frame.columns = [str(c).strip() for c in frame.columns]
+    if frame.empty:
+        raise DataError("no rows to predict", where=ref.where)
+    spec, plan = run.spec, run.plan
+    family = get_family(plan["family"])
+    factors = [SimpleNamespace(**f) for f in plan["factors"]]
+    design = Design.from_dict(plan["design"])
+    interval = interval or (spec.get("estimates") or {}).get("interval", 0.94)
+    seed = run.seed if seed is None else seed
+    outcome = spec["outcome"]
+    need = _required_columns(design, factors, outcome)
+    _check_columns(frame, need, ref)
+    for column in design.columns:
+        if column not in design.levels:
+            numeric(frame, column, "predictor", ref)
+    design.check_levels(frame, ref.where)
+    X = design.matrix(frame)
+    idata = run.posterior
+    draws = draws_of(idata.posterior, factors, _parameters(family, idata.posterior))
+    rng = seeds.rng(seed, "predict")
+    groups, status = [], {}
+    labels = group_labels(frame, factors)
+    for f in factors:
+        known = [str(v) for v in idata.posterior[f.name].values]
+        index, new_levels = _group_index(labels[f.name], known)
+        status[f.name] = np.where(index < len(known), "known", "new")
+        draws.effects[f.name] = np.concatenate(
+            [draws.effects[f.name], _new_effects(idata.posterior, f, len(new_levels), rng)], axis=1)
+        W = None
+        if f.predictors:
+            constants = getattr(idata, "constant_data", None)
+            if constants is None or f"{f.name}__W" not in constants:
+                raise RunFolderError(f"run folder {str(run.path)!r} lacks the group-level predictor values "
+                                     f"of {f.name} in posterior.nc", hint="refit it with this version of hierwork")
+            W_known = constants[f"{f.name}__W"].sel({f"{f.name}__predictor": list(f.predictors)}).values
+            W = np.vstack([W_known, _new_group_values(frame, f, labels[f.name], new_levels, ref)])
+        groups.append((f.name, index, [design.index(t) for t in f.varying], W))
+    columns = {key: (numeric(frame, outcome[key], key, ref) if outcome.get(key) else None)
+               for key in ("trials", "exposure", "known_sd")}
+    rows = Rows(X, groups, OutcomeRows(None, **columns))
+    result = frame.copy()
+    for key, values in _summaries(draws, rows, family, rng, interval).items():
+        result[key] = values
+    names = list(status)
+    result["group_status"] = (status[names[0]] if len(names) == 1 else
+                              [("; ".join(f"{n}={status[n][i]}" for n in names)) for i in range(len(frame))])
+    return result
+
+
+def _parameters(family, posterior) -> list:
+    """The family's parameters stored in the posterior (none for known SDs)."""
+    candidates = family.parameters(OutcomeRows(None)) + family.parameters(OutcomeRows(None, known_sd=np.ones(1)))
+    return [name for name in dict.fromkeys(candidates) if name in posterior]
+
+
+def _summaries(draws, rows, family, rng, interval) -> dict:
+    lo_q, hi_q = (1 - interval) / 2, 1 - (1 - interval) / 2
+    out = {k: np.empty(rows.n) for k in COLUMNS}
+    params = draws.family_params()
+    for sl in chunks(draws.n, rows.n):
+        eta = linear_predictor(draws, rows, sl)
+        rep = family.simulate(rng, eta, rows.outcome.rows(sl), params)
+        out["pred_mean"][sl], out["pred_sd"][sl] = rep.mean(axis=0), rep.std(axis=0, ddof=1)
+        out["pred_lower"][sl], out["pred_upper"][sl] = np.quantile(rep, [lo_q, hi_q], axis=0)
+        out["link_mean"][sl] = eta.mean(axis=0)
+        out["link_lower"][sl], out["link_upper"][sl] = np.quantile(eta, [lo_q, hi_q], axis=0)
+    return out
+
+
+def _required_columns(design: Design, factors, outcome: dict) -> dict:
+    """Column -> what needs it."""
+    need = {}
+    for column in design.columns:
+        need.setdefault(column, "a population predictor")
+    for f in factors:
+        need.setdefault(f.column, f"the group labels of {f.name}")
+        for c in f.predictors:
+            need.setdefault(c, f"a group-level predictor of {f.name}")
+    for key in ("trials", "exposure", "known_sd"):
+        if outcome.get(key):
+            need.setdefault(outcome[key], f"outcome.{key}")
+    return need
+
+
+def _check_columns(frame, need: dict, ref: RowRef) -> None:
+    missing = [c for c in need if c not in frame.columns]
+    if missing:
+        listed = ", ".join(f"{c!r} ({need[c]})" for c in missing)
+        raise DataError(f"missing column{'s' if len(missing) > 1 else ''} {listed}", where=ref.where,
+                        hint="the new rows need the same predictor and group columns as the fitted data")
+    for column in need:
+        mask = blank(frame[column])
+        if mask.any():
+            raise DataError(f"column {column!r} has missing values in {ref.text(mask)}", where=ref.where,
+                            hint="fill them in or drop those rows; hierwork does not guess")
+
+
+def _group_index(labels, known: list) -> tuple:
+    """Index of each row's group in ``known + new levels``, and the new levels (first-seen order)."""
+    position = {g: k for k, g in enumerate(known)}
+    new_levels = list(pd.unique(pd.Series([g for g in labels if g not in position], dtype=object)))
+    position.update({g: len(known) + k for k, g in enumerate(new_levels)})
+    return np.array([position[g] for g in labels], dtype=np.int64), new_levels
+
+
+def _new_effects(posterior, factor, count: int, rng) -> np.ndarray:
+    """Effects of ``count`` unseen groups, one independent ``N(0, S)`` draw per posterior draw: (D, count, q)."""
+    name, q = factor.name, len(factor.varying)
+    sd = np.asarray(posterior[f"{name}__sd"].values, dtype=float).reshape(-1, q)
+    chol = sd[:, :, None] * (np.linalg.cholesky(np.asarray(posterior[f"{name}__corr"].values).reshape(-1, q, q))
+                             if q > 1 else np.ones((1, 1, 1)))
+    z = rng.standard_normal((sd.shape[0], count, q))
+    return np.einsum("dij,dkj->dki", chol, z)
+
+
+def _new_group_values(frame, factor, labels, new_levels, ref: RowRef) -> np.ndarray:
+    """Group-level predictor values of the new groups (one value per group, checked)."""
+    out = np.zeros((len(new_levels), len(factor.predictors)))
+    for k, column in enumerate(factor.predictors):
+        values = numeric(frame, column, "group-level predictor", ref)
+        varying = [v for v in varying_within(values, labels) if v[0] in set(new_levels)]
+        if varying:
+            g, lo, hi = varying[0]
+            raise DataError(f"group-level predictor {column!r} is not constant within new "
+                            f"{factor.name} {g!r} (from {lo:g} to {hi:g})", where=ref.where,
+                            hint="a group-level predictor takes one value per group")
+        first = pd.Series(values).groupby(pd.Series(labels, dtype=object), sort=False).first()
+        out[:, k] = first.loc[new_levels].to_numpy()
+    return out

@@ -1,0 +1,136 @@
+"""The same contract checks on every registered outcome family (hierwork/plan/families/).
+
+A family added to the registry is checked here with no other edit:
+
+* its log density, written from its formula, equals the same distribution in
+  scipy.stats (its ``reference``), and the PyMC likelihood the model uses gives
+  the same numbers (so the fit and everything computed after it agree);
+* its simulator reproduces the reference distribution's mean and variance;
+* its maximum-likelihood baselines equal a general-purpose library's GLM fit
+  (statsmodels) where statsmodels has the model (:data:`STATSMODELS`);
+* a small fit through the public API recovers the population intercept and
+  the group SD of data simulated from the family, two-sided: the truth is inside
+  the 99% interval and the data have narrowed the prior substantially.
+"""
+from __future__ import annotations
+
+from types import SimpleNamespace
+
+import numpy as np
+import pandas as pd
+import pymc as pm
+import pytensor.tensor as pt
+import pytest
+import scipy.sparse as sp
+import statsmodels.api as sm
+import yaml
+
+import hierwork
+from hierwork.plan.families import FAMILY_NAMES, get_family
+from hierwork.plan.families.base import OutcomeRows
+from hierwork.results.baselines import fit_glm
+
+FAMILIES = [get_family(name) for name in FAMILY_NAMES]
+IDS = list(FAMILY_NAMES)
+
+
+def _case(family, n=400, seed=0):
+    """Rows, a linear predictor around 0.5 and the family's example parameters, with outcomes."""
+    rng = np.random.default_rng(seed)
+    rows = family.example_rows(rng, n)
+    x = rng.normal(size=n)
+    eta = 0.5 + 0.4 * x
+    params = {k: np.float64(v) for k, v in family.example_params.items()}
+    y = family.simulate(rng, eta, rows, params)
+    return OutcomeRows(y, rows.trials, rows.exposure, rows.known_sd), x, eta, params
+
+
+def _logpdf(dist, y):
+    return dist.logpmf(y) if hasattr(dist, "logpmf") else dist.logpdf(y)
+
+
+@pytest.mark.parametrize("family", FAMILIES, ids=IDS)
+def test_log_density_matches_scipy_and_pymc(family):
+    rows, _, eta, params = _case(family, n=60)
+    ours = family.log_density(rows.y, eta, rows, params)
+    np.testing.assert_allclose(ours, _logpdf(family.reference(eta, rows, params), rows.y), rtol=1e-9, atol=1e-9)
+    with pm.Model() as model:
+        family.likelihood(pt.as_tensor(eta), pm.Data("y_data", rows.y), rows,
+                          {k: pt.as_tensor(v) for k, v in params.items()})
+    pymc_logp = model.compile_fn(model.logp(vars=[model["y"]], sum=False)[0], inputs=[], point_fn=False)()
+    np.testing.assert_allclose(pymc_logp, ours, rtol=1e-8, atol=1e-8)
+
+
+@pytest.mark.parametrize("family", FAMILIES, ids=IDS)
+def test_simulator_moments_match_reference(family):
+    rows, _, eta, params = _case(family, n=3)
+    rng = np.random.default_rng(1)
+    draws = 40_000
+    sims = family.simulate(rng, np.broadcast_to(eta, (draws, 3)), rows, {k: np.full((draws, 1), v)
+                                                                          for k, v in params.items()})
+    ref = family.reference(eta, rows, params)
+    mean, var = np.asarray(ref.mean()), np.asarray(ref.var())
+    # Five standard errors of the sample mean and (roughly, via the fourth moment bound) of the variance.
+    np.testing.assert_array_less(np.abs(sims.mean(axis=0) - mean), 5 * np.sqrt(var / draws) + 1e-12)
+    assert np.all(np.abs(sims.var(axis=0) / var - 1) < 0.1)
+
+
+def _sm_binomial(rows, X):
+    endog = np.column_stack([rows.y, rows.trials - rows.y]) if rows.trials is not None else rows.y
+    return sm.GLM(endog, X, family=sm.families.Binomial()).fit().params
+
+
+def _sm_nb(rows, X):
+    res = sm.NegativeBinomial(rows.y, X, exposure=rows.exposure, loglike_method="nb2").fit(disp=0, maxiter=200)
+    return res.params[:-1]
+
+
+#: Family -> the same maximum-likelihood fit in statsmodels (a general-purpose reference library).
+STATSMODELS = {
+    "normal": lambda rows, X: sm.OLS(rows.y, X).fit().params,
+    "bernoulli": _sm_binomial,
+    "binomial": _sm_binomial,
+    "poisson": lambda rows, X: sm.GLM(rows.y, X, family=sm.families.Poisson(), exposure=rows.exposure).fit().params,
+    "negative_binomial": _sm_nb,
+}
+
+
+@pytest.mark.parametrize("family", FAMILIES, ids=IDS)
+def test_baselines_match_statsmodels(family):
+    if family.name not in STATSMODELS:
+        pytest.skip(f"statsmodels has no {family.name} GLM with the same likelihood")
+    rows, x, _, _ = _case(family, n=500, seed=3)
+    X = np.column_stack([np.ones_like(x), x])
+    ours = fit_glm(SimpleNamespace(family=family, outcome=rows), sp.csr_matrix(X), np.ones(len(x), bool))
+    np.testing.assert_allclose(ours, STATSMODELS[family.name](rows, X), rtol=1e-4, atol=1e-5)
+
+
+@pytest.mark.slow
+@pytest.mark.parametrize("family", FAMILIES, ids=IDS)
+def test_small_fit_recovers_intercept_and_group_sd(family, tmp_path):
+    rng = np.random.default_rng(11)
+    groups, per_group, intercept, group_sd = 12, 25, 0.5, 0.4
+    n = groups * per_group
+    site = np.repeat(np.arange(groups), per_group)
+    rows = family.example_rows(rng, n)
+    eta = intercept + rng.normal(0, group_sd, groups)[site]
+    params = {k: np.float64(v) for k, v in family.example_params.items()}
+    frame = pd.DataFrame({"site": [f"s{j:02d}" for j in site], "y": family.simulate(rng, eta, rows, params)})
+    outcome = {"column": "y", "family": family.name}
+    for key in ("trials", "exposure"):
+        if getattr(rows, key) is not None:
+            frame[key] = getattr(rows, key)
+            outcome[key] = key
+    frame.to_csv(tmp_path / "data.csv", index=False)
+    spec = {"format": "hierwork/1", "name": "recovery", "data": "data.csv", "outcome": outcome,
+            "groups": {"site": {"column": "site"}}}
+    (tmp_path / "spec.yaml").write_text(yaml.safe_dump(spec))
+    run = hierwork.fit(tmp_path / "spec.yaml", out=tmp_path / "run", progress=False,
+                       overrides={"sampling.chains": 2, "sampling.draws": 400, "sampling.warmup": 400,
+                                  "sampling.seed": 5, "estimates.interval": 0.99})
+    summary = run.summary.set_index("parameter")
+    prior_sd = run.plan["priors"]["intercept"]["params"]["sigma"]
+    for name, truth in (("intercept", intercept), ("site.sd", group_sd)):
+        row = summary.loc[name]
+        assert row["lower"] <= truth <= row["upper"], (name, row.to_dict())
+    assert summary.loc["intercept", "sd"] < prior_sd / 4
