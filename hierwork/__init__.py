@@ -22,7 +22,7 @@ _API = {
     "run_demo": "hierwork.pipeline",
     "predict": "hierwork.results.predict",
     "Run": "hierwork.runfolder",
-    "compare_runs": "hierwork.report.compare", "write_report": "hierwork.report",
+    "compare_runs": "hierwork.report.compare", "write_report": "hierwork.report.publish",
     "batch_status": "hierwork.batch.progress",
     "run_batch": "hierwork.batch.runner",
     "Spec": "hierwork.declare.spec", "load_spec": "hierwork.declare.spec",

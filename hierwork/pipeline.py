@@ -140,7 +140,7 @@ def fit(spec, out, force: bool = False, overrides: dict | None = None, progress:
     """
     from hierwork import runfolder
     from hierwork.inference.gate import evaluate_gate
-    from hierwork.report import write_report
+    from hierwork.report.publish import write_report
     from hierwork.results import loo, predictive
     from hierwork.results.baselines import baselines
     from hierwork.results.estimates import group_estimates, pooling_factors, population_summary

@@ -44,3 +44,33 @@ def write_spec(folder: Path, text: str, name: str = "spec.yaml") -> Path:
 def spec_writer(tmp_path):
     """Callable writing a spec into ``tmp_path``."""
     return lambda text, name="spec.yaml": write_spec(tmp_path, text, name)
+
+
+#: The test being set up or run (fixtures it needs are built during its setup).
+_CURRENT: dict = {"item": None}
+
+
+def pytest_runtest_setup(item):
+    _CURRENT["item"] = item
+
+
+def pytest_configure(config):
+    """Tests outside the statistical tier (``slow``) may not run MCMC, so the fast tier stays fast.
+
+    PyMC's and nutpie's samplers are wrapped: called while a test without the
+    marker (or a fixture it needs) is set up or run, they fail with a message saying so.
+    """
+    import nutpie
+    import pymc
+
+    for module in (pymc, nutpie):
+        module.sample = _guarded(module.sample)
+
+
+def _guarded(sample):
+    def wrapper(*args, **kwargs):
+        item = _CURRENT["item"]
+        if item is not None and item.get_closest_marker("slow") is None:
+            raise AssertionError(f"{item.nodeid} runs MCMC: mark it @pytest.mark.slow")
+        return sample(*args, **kwargs)
+    return wrapper

@@ -11,6 +11,8 @@ from hierwork.cli import main
 from batchkit import (assert_run_folders_sound, batch_state, chain_processes, fit_process, hierwork,
                       kill_session, line_output, pid_alive, process, running_attempt, start_batch, wait_for)
 
+pytestmark = pytest.mark.slow  # every test here runs batches of real fits in child processes
+
 
 @pytest.mark.slow
 def test_batch_killed_during_second_job_resumes_without_rerunning_the_first(tmp_path, capsys):

@@ -21,7 +21,7 @@ from pathlib import Path
 
 import pytest
 
-from hierwork.report import write_report
+from hierwork.report.publish import write_report
 from test_report_fixture import HOSTILE, Page, build_run, run_root  # noqa: F401
 
 CHROMIUM = shutil.which("chromium") or shutil.which("chromium-browser")

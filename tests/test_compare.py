@@ -8,9 +8,11 @@ import sys
 import pandas as pd
 import pytest
 
-from hierwork.report import compare_runs
+from hierwork.report.compare import compare_runs
 from hierwork.report.compare import spec_differences
 from test_report_fixture import HOSTILE, Page, build_run, copy_run, run_root  # noqa: F401
+
+pytestmark = pytest.mark.slow  # every test here fits a model (MCMC)
 
 
 def _cli(*args):

@@ -16,6 +16,8 @@ import hierwork
 from hierwork.cli import main
 from test_report_fixture import Page
 
+pytestmark = pytest.mark.slow  # every test here fits a model (MCMC)
+
 RAIL = Path(__file__).parent / "data" / "rail.csv"
 SPEC = f"""
 format: hierwork/1

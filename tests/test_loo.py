@@ -17,6 +17,8 @@ import pytest
 import predictive_kit as kit
 from hierwork.results import loo
 
+pytestmark = pytest.mark.slow  # every test here fits a model (MCMC)
+
 
 @pytest.fixture(scope="module")
 def cbpp(tmp_path_factory):

@@ -20,6 +20,8 @@ from hierwork.cli import main
 from hierwork.data.labels import group_labels
 from hierwork.results.predict import _group_index, predict
 
+pytestmark = pytest.mark.slow  # every test here fits a model (MCMC)
+
 WHEAT = (kit.Path(__file__).parent.parent / "model_specs" / "wheat.yaml").read_text().replace("../demo/data", "DEMO")
 
 

@@ -25,6 +25,8 @@ from hierwork.model.rowwise import build_model
 from hierwork.results import prior_predictive
 from hierwork.results.draws import draws_of, pointwise_log_likelihood, rows_of
 
+pytestmark = pytest.mark.slow  # every test here fits a model (MCMC)
+
 NESTED = """format: hierwork/1
 name: nested
 data: DEMO/wheat.csv

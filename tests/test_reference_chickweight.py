@@ -40,6 +40,8 @@ import xarray as xr
 
 import hierwork
 
+pytestmark = pytest.mark.slow  # every test here fits a model (MCMC)
+
 DATA = Path(__file__).parent / "data"
 PLUG_IN_ALLOWANCE = 0.1   # posterior SDs, see the module docstring
 

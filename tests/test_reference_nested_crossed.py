@@ -27,6 +27,8 @@ import statsmodels.formula.api as smf
 
 import hierwork
 
+pytestmark = pytest.mark.slow  # every test here fits a model (MCMC)
+
 DATA = Path(__file__).parent / "data"
 
 

@@ -188,10 +188,12 @@ def eight_schools(tmp_path_factory):
         """.replace("\n        ", "\n"))
 
 
+@pytest.mark.slow
 def test_eight_schools_passes_gate(eight_schools):
     assert eight_schools.passed, eight_schools.diagnostics
 
 
+@pytest.mark.slow
 def test_eight_schools_baselines(eight_schools):
     rows = _intercept_rows(eight_schools, "school")
     data = pd.read_csv(DATA / "eight_schools.csv").set_index("school")
@@ -202,6 +204,7 @@ def test_eight_schools_baselines(eight_schools):
     np.testing.assert_allclose(rows.loc[data.index, "no_pooling"], data["effect"], rtol=1e-10)
 
 
+@pytest.mark.slow
 def test_eight_schools_partial_pooling_is_the_exact_posterior(eight_schools):
     data = pd.read_csv(DATA / "eight_schools.csv")
     exact, grid_error = exact_with_grid_error(
@@ -266,11 +269,13 @@ def _exact_for(c, data):
     return ybar, exact, error
 
 
+@pytest.mark.slow
 def test_one_way_passes_gate(one_way):
     name, _, run, _ = one_way
     assert run.passed, (name, run.diagnostics)
 
 
+@pytest.mark.slow
 def test_one_way_data_match_the_published_anova(one_way):
     # The copied data reproduce the published mean squares (SOURCES.md), so the
     # REML figures below belong to these very numbers.
@@ -282,6 +287,7 @@ def test_one_way_data_match_the_published_anova(one_way):
     np.testing.assert_allclose([msb, msw], c["anova"], rtol=5e-4)
 
 
+@pytest.mark.slow
 def test_one_way_baselines_are_grand_and_group_means(one_way):
     # Closed forms (no pooling: group means; complete pooling: the grand mean,
     # which for a balanced design is also the REML mean, SOURCES.md: 1527.5 and
@@ -294,6 +300,7 @@ def test_one_way_baselines_are_grand_and_group_means(one_way):
     np.testing.assert_allclose(rows.loc[means.index, "no_pooling"], means, rtol=1e-10)
 
 
+@pytest.mark.slow
 def test_one_way_population_mean_and_sd_against_reml(one_way):
     name, c, run, data = one_way
     post = run.posterior.posterior
@@ -317,6 +324,7 @@ def test_one_way_population_mean_and_sd_against_reml(one_way):
         assert abs(got - exact["tau_q"][i]) <= tol, (name, q, got, exact["tau_q"][i], tol)
 
 
+@pytest.mark.slow
 def test_one_way_group_effects_are_the_exact_posterior(one_way):
     name, c, run, data = one_way
     ybar, exact, error = _exact_for(c, data)
@@ -348,6 +356,7 @@ sampling: {chains: 2, warmup: 300, draws: 300, seed: 5}
 """)
 
 
+@pytest.mark.slow
 def test_cbpp_baselines_against_binomial_glm(cbpp):
     data = pd.read_csv(DATA / "cbpp.csv")
     data["healthy"] = data["size"] - data["incidence"]

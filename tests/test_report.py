@@ -11,12 +11,14 @@ import pandas as pd
 import pytest
 
 from hierwork.errors import RunFolderError
-from hierwork.report import render_report, write_report
+from hierwork.report.publish import render_report, write_report
 from hierwork.report import figures
 from hierwork.report.markdown import md_escape
 from hierwork.formatting import number as fmt
 from hierwork.report.verdict import CheckLine
 from test_report_fixture import HOSTILE, Page, build_run, copy_run, run_root  # noqa: F401
+
+pytestmark = pytest.mark.slow  # the tests here fit models (MCMC) or render fitted run folders
 
 
 @pytest.fixture(scope="module")

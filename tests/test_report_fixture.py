@@ -17,6 +17,8 @@ import numpy as np
 import pandas as pd
 import pytest
 
+pytestmark = pytest.mark.slow  # the tests here fit models (MCMC) or render fitted run folders
+
 HOSTILE = "<script>alert(1)</script>"
 FARMS = (HOSTILE, "Hill & Dale", "$5 acre", "north_01", "north_02", "east_01",
          "east_02", "south_01", "south_02", "west_01", "west_02", "west_03")
