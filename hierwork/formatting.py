@@ -10,7 +10,7 @@ from __future__ import annotations
 
 import math
 
-__all__ = ["number", "number_against", "share"]
+__all__ = ["number", "number_against", "share", "probability"]
 
 #: Below this magnitude (and from ``_LARGE`` up) a number is written with an exponent.
 _SMALL, _LARGE = 1e-3, 1e6
@@ -72,3 +72,19 @@ def share(value) -> str:
     if pct < 10 and round(pct) != pct:
         return f"{pct:.1f}%"
     return f"{pct:.0f}%"
+
+
+def probability(value) -> str:
+    """A posterior probability from draws: ``0.97``, ``0.305``; ``<0.001`` and ``>0.999`` at the ends.
+
+    A share of draws of exactly 0 or 1 does not make the event impossible or
+    certain, so the ends are written as bounds.
+    """
+    if value is None or (isinstance(value, float) and math.isnan(value)):
+        return "-"
+    value = float(value)
+    if value < 0.0005:
+        return "<0.001"
+    if value > 0.9995:
+        return ">0.999"
+    return f"{value:.3f}".rstrip("0").rstrip(".") if value >= 0.01 else f"{value:.3f}"

@@ -143,7 +143,8 @@ def fit(spec, out, force: bool = False, overrides: dict | None = None, progress:
     from hierwork.report.publish import write_report
     from hierwork.results import loo, predictive
     from hierwork.results.baselines import baselines
-    from hierwork.results.estimates import group_estimates, pooling_factors, population_summary
+    from hierwork.results.estimates import contrasts, group_estimates, population_summary
+    from hierwork.results.pooling import pooling_factors
 
     started = _dt.datetime.now(_dt.timezone.utc)
     t0 = time.perf_counter()
@@ -159,6 +160,8 @@ def fit(spec, out, force: bool = False, overrides: dict | None = None, progress:
         "summary.csv": population_summary(idata, plan, spec.interval),
         "pooling.csv": pooling_factors(idata, plan),
     }
+    if plan.estimands.contrasts:
+        contents["contrasts.csv"] = contrasts(idata, plan, spec.interval)
     contents.update(predictive.augment(idata, plan, settings["seed"], spec.interval))
     contents.update(loo.pooling_comparison(idata, plan, spec, settings["seed"]))
     finished = _dt.datetime.now(_dt.timezone.utc)

@@ -39,6 +39,8 @@ RUN_FILES = (
     RunFile("group_estimates.csv", True, "partial pooling beside both baselines, per factor, group and term"),
     RunFile("summary.csv", True, "population-level and variance parameters"),
     RunFile("pooling.csv", False, "pooling factor per factor and varying term"),
+    RunFile("contrasts.csv", False, "the requested differences between two groups, on the outcome's scale"),
+    RunFile("figures/", False, "every figure of the report as NAME.png and NAME.svg"),
     RunFile("diagnostics.json", True, "the gate: every check, its value, threshold and worst parameter"),
     RunFile("posterior.nc", True, "ArviZ InferenceData (NetCDF): posterior and predictive draws"),
     RunFile("calibration.json", False, "coverage of the posterior predictive intervals"),
@@ -51,7 +53,7 @@ RUN_FILES = (
 )
 REQUIRED_FILES = tuple(f.name for f in RUN_FILES if f.required)
 #: Columns of the CSV files that hold labels (read as text: a group called ``NA`` stays ``NA``).
-LABEL_COLUMNS = ("factor", "group", "term", "parameter", "model")
+LABEL_COLUMNS = ("factor", "group", "term", "parameter", "model", "group_a", "group_b")
 
 
 # --------------------------------------------------------------------------- writing
@@ -284,6 +286,15 @@ class Run:
     @property
     def pooling(self):
         return self._csv("pooling.csv")
+
+    @property
+    def contrasts(self):
+        return self._csv("contrasts.csv")
+
+    @property
+    def estimands(self) -> dict | None:
+        """Reference values, outcome scale, target and contrasts (``plan.json``; None for older runs)."""
+        return (self.plan or {}).get("estimands")
 
     @property
     def pooling_comparison(self):

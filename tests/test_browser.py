@@ -1,7 +1,7 @@
 """report.html as a person sees it: rendered by headless Chromium (Debian package).
 
-Checks: the verdict and the pooling figure are in the rendered DOM and visible
-on screen, the page's own script ran under its Content-Security-Policy, no
+Checks: the verdict, what stands out and the sorted estimates are in the
+rendered DOM and visible on screen, the page's own script ran under its Content-Security-Policy, no
 console message (errors, CSP refusals) and no request to any other host. The
 request check reads Chromium's network log (``--log-net-log``) and keeps the
 requests whose network isolation key is the ``file://`` page (the browser's own
@@ -27,7 +27,7 @@ from test_report_fixture import HOSTILE, Page, build_run, run_root  # noqa: F401
 CHROMIUM = shutil.which("chromium") or shutil.which("chromium-browser")
 ARTIFACTS = Path(__file__).parent / "artifacts"
 # Okabe and Ito (2008) colours used by the report (hierwork/report/style.css, figures.py).
-VERMILLION, GREEN, ORANGE = (0xD5, 0x5E, 0x00), (0x00, 0x9E, 0x73), (0xE6, 0x9F, 0x00)
+VERMILLION, GREEN, BLUE = (0xD5, 0x5E, 0x00), (0x00, 0x9E, 0x73), (0x00, 0x72, 0xB2)
 
 pytestmark = [pytest.mark.browser,
               pytest.mark.skipif(CHROMIUM is None, reason="chromium is not installed "
@@ -102,8 +102,9 @@ def test_failing_report_renders_offline_without_console_messages(failing_report,
     page = Page(dom)
     verdict = page.find("section", id="verdict")[0][2]
     assert "Gate failed (R-hat, Bulk ESS): do not use these estimates." in verdict
-    pooling = page.find("figure", id="pooling-0")
-    assert pooling and pooling[0][2].startswith("farm, intercept: hollow circles")
+    assert page.find("section", id="standout")[0][2].startswith("What stands out")
+    pooling = page.find("figure", id="pooling-farm-intercept")
+    assert pooling and pooling[0][2].startswith("farm, expected outcome: hollow circles")
     # The sort script ran, so the policy's script hash matched the script.
     assert all("sort-ready" in a["class"] for _, a, _ in page.find("table")
                if "sortable" in a.get("class", ""))
@@ -112,12 +113,12 @@ def test_failing_report_renders_offline_without_console_messages(failing_report,
     assert len(page.find("script")) == 1
 
 
-def test_failing_first_screen_shows_the_verdict_and_pooling_figure(failing_report, tmp_path):
-    desktop = _screenshot(failing_report, tmp_path, "report-failing-desktop.png", 1280, 1100)
+def test_failing_first_screens_show_the_verdict_and_sorted_estimates(failing_report, tmp_path):
+    desktop = _screenshot(failing_report, tmp_path, "report-failing-desktop.png", 1280, 2200)
     # The verdict box (vermillion border and banner) is on the first screen, near the top.
     assert _pixels_near(desktop, VERMILLION, (0, 0, 1280, 450)) > 3000
-    # The pooling figure's orange no-pooling circles are drawn further down the first screen.
-    assert _pixels_near(desktop, ORANGE, (0, 450, 1280, 1100)) > 300
+    # After what stands out, the sorted estimates' blue intervals, within the first two screens.
+    assert _pixels_near(desktop, BLUE, (0, 450, 1280, 2200)) > 300
     phone = _screenshot(failing_report, tmp_path, "report-failing-phone.png", 390, 844)
     assert _pixels_near(phone, VERMILLION, (0, 0, 390, 500)) > 1500
     assert phone.size == (390, 844)

@@ -6,6 +6,10 @@ A family added to the registry is checked here with no other edit:
   scipy.stats (its ``reference``), and the PyMC likelihood the model uses gives
   the same numbers (so the fit and everything computed after it agree);
 * its simulator reproduces the reference distribution's mean and variance;
+* its Fisher information about the linear predictor (used by the pooling
+  weight) equals the variance of the score, ``E[(d log p / d eta)^2]``
+  (Fisher's identity, e.g. Casella and Berger 2002, Lemma 7.3.11), estimated by
+  simulation with the score taken by central differences of the log density;
 * its maximum-likelihood baselines equal a general-purpose library's GLM fit
   (statsmodels) where statsmodels has the model (:data:`STATSMODELS`);
 * a small fit through the public API recovers the population intercept and
@@ -73,6 +77,22 @@ def test_simulator_moments_match_reference(family):
     # Five standard errors of the sample mean and (roughly, via the fourth moment bound) of the variance.
     np.testing.assert_array_less(np.abs(sims.mean(axis=0) - mean), 5 * np.sqrt(var / draws) + 1e-12)
     assert np.all(np.abs(sims.var(axis=0) / var - 1) < 0.1)
+
+
+@pytest.mark.parametrize("family", FAMILIES, ids=IDS)
+def test_information_is_the_variance_of_the_score(family):
+    rows, _, eta, params = _case(family, n=4)
+    params = {k: 1.7 * v for k, v in params.items()}  # away from 1, so that a missing scale shows
+    rng = np.random.default_rng(2)
+    draws, h = 100_000, 1e-5
+    sims = family.simulate(rng, np.broadcast_to(eta, (draws, 4)), rows, {k: np.full((draws, 1), v)
+                                                                          for k, v in params.items()})
+    score = (family.log_density(sims, eta + h, rows, params) - family.log_density(sims, eta - h, rows, params)) / (2 * h)
+    squares = score ** 2
+    expected = np.broadcast_to(family.information(eta, rows, params), eta.shape)
+    # Five Monte Carlo standard errors of the mean of the squared scores.
+    np.testing.assert_array_less(np.abs(squares.mean(axis=0) - expected), 5 * squares.std(axis=0) / np.sqrt(draws))
+    assert np.all(expected > 0)
 
 
 def _sm_binomial(rows, X):

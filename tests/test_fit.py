@@ -41,15 +41,25 @@ def rail_run(tmp_path_factory):
 def test_run_folder_has_every_file(rail_run):
     names = {p.name for p in rail_run.path.iterdir()}
     assert {"posterior.nc", "diagnostics.json", "group_estimates.csv", "summary.csv", "spec.yaml",
-            "provenance.json", "plan.json", "pooling.csv", "report.html", "summary.md"} <= names
+            "provenance.json", "plan.json", "pooling.csv", "report.html", "summary.md", "figures"} <= names
+    figures = {p.name for p in (rail_run.path / "figures").iterdir()}
+    assert {"ranked-rail-intercept.svg", "ranked-rail-intercept.png", "pooling-rail-intercept.svg",
+            "pooling-rail-intercept.png", "traces.svg", "traces.png"} <= figures
+    assert (rail_run.path / "figures" / "traces.png").read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
     assert not [p for p in rail_run.path.parent.iterdir() if ".tmp-" in p.name]
 
 
 def test_group_estimates_columns_and_units(rail_run):
     table = rail_run.group_estimates
-    assert list(table.columns[:10]) == ["factor", "group", "term", "n", "no_pooling", "complete_pooling",
-                                        "partial_mean", "partial_sd", "lower", "upper"]
-    assert len(table) == 6 and set(table["n"]) == {3}
+    assert list(table.columns) == [
+        "factor", "group", "term", "rows", "no_pooling", "complete_pooling", "partial_mean", "partial_sd",
+        "lower", "upper", "outcome_mean", "outcome_lower", "outcome_upper", "no_pooling_outcome",
+        "complete_pooling_outcome", "pooling_weight", "p_above_population", "p_beyond_target",
+        "rank_median", "rank_lower", "rank_upper", "p_top", "p_bottom"]
+    assert len(table) == 6 and set(table["rows"]) == {3}
+    # Normal outcome: the outcome's scale is the linear predictor's.
+    np.testing.assert_allclose(table["outcome_mean"], table["partial_mean"])
+    assert table["p_beyond_target"].isna().all()  # no estimates.target in the spec
     # No pooling is each rail's mean, complete pooling the grand mean (closed forms).
     data = pd.read_csv(RAIL)
     means = data.groupby("rail")["travel_ns"].mean()
@@ -61,7 +71,9 @@ def test_group_estimates_columns_and_units(rail_run):
 def test_summary_and_diagnostics_contract(rail_run):
     summary = rail_run.summary
     assert list(summary.columns) == ["parameter", "mean", "sd", "lower", "upper", "ess_bulk", "ess_tail", "r_hat"]
-    assert set(summary["parameter"]) == {"intercept", "residual_sd", "rail.sd"}
+    assert list(summary["parameter"]) == ["intercept", "residual_sd", "rail.sd", "outcome"]
+    # No predictors: the population value on the outcome's scale is the intercept.
+    np.testing.assert_allclose(summary["mean"].iloc[3], summary["mean"].iloc[0])
     diag = rail_run.diagnostics
     assert diag["format"] == "hierwork-diagnostics/1"
     assert [c["name"] for c in diag["checks"]] == ["r_hat", "ess_bulk", "ess_tail", "divergences", "bfmi",

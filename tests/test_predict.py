@@ -35,11 +35,19 @@ def _rows(farms, nitrogen=0.0, tillage="conventional"):
     return pd.DataFrame({"farm": farms, "nitrogen_kg": nitrogen, "tillage": tillage})
 
 
+def _reference(run, column):
+    """The value at which group_estimates.csv compares groups (plan.json, estimands)."""
+    return next(v["value"] for v in run.plan["estimands"]["values"] if v["column"] == column)
+
+
 def test_known_groups_match_posterior_group_means(run):
     table = run.group_estimates.set_index("group")
     farms = list(table.index[:5])
-    out = predict(run, _rows(farms))  # predictors at 0 and reference level: the farm's own intercept
+    # At the reference values (nitrogen at its mean, tillage at its reference level): the farm's row.
+    out = predict(run, _rows(farms, nitrogen=_reference(run, "nitrogen_kg"), tillage=_reference(run, "tillage")))
     np.testing.assert_allclose(out["link_mean"], table.loc[farms, "partial_mean"], rtol=0, atol=1e-9)
+    np.testing.assert_allclose(out["outcome_mean"], table.loc[farms, "outcome_mean"], rtol=0, atol=1e-9)
+    np.testing.assert_allclose(out["outcome_lower"], table.loc[farms, "outcome_lower"], rtol=0, atol=1e-9)
     assert (out["group_status"] == "known").all()
     # the outcome's predictive mean equals the link mean (identity) within Monte Carlo error:
     # SE = pred_sd / sqrt(draws) (600 draws here); 5 SE.

@@ -90,6 +90,7 @@ outcome: {{column: weight_g, family: normal}}
 predictors: [day]
 groups:
   chick: {groups_text}
+estimates: {{at: {{day: zero}}}}     # the chicks' intercepts at day 0, as REML reports them
 sampling: {{chains: 2, warmup: 500, draws: 1000, seed: 21}}
 """, encoding="utf-8")
     return hierwork.fit(spec, out=folder / f"run_{name}", progress=False)

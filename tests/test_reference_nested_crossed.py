@@ -94,7 +94,7 @@ def test_oats_main_plots_are_distinct_within_blocks(oats):
     table = run.group_estimates
     plots = table[table["factor"] == "main_plot"]
     assert len(plots) == data.groupby(["block", "variety"]).ngroups == 18
-    assert (plots["n"] == 4).all()
+    assert (plots["rows"] == 4).all()
 
 
 def test_oats_population_terms_equal_mixedlm(oats):

@@ -11,6 +11,10 @@
   against the exact posterior by quadrature over (mu, tau, sigma).
 * cbpp (Lesnoff et al. 2004): binomial complete- and no-pooling baselines
   against statsmodels GLM(family=Binomial()) fitted here.
+* The pooling weight of every group (``pooling_weight``, the posterior mean of
+  ``v_j / (v_j + tau^2)``; Efron and Morris 1975, BDA3 §5.5) against the same
+  exact posterior: dyestuff and rail are balanced one-factor normal designs
+  (``v_j = sigma^2 / n``), eight schools has known, unequal SDs.
 
 Monte Carlo tolerances: a posterior mean or SD estimated from draws is compared
 with the exact value within 4 Monte Carlo standard errors (MCSE from ArviZ,
@@ -90,7 +94,9 @@ def exact_one_way(ybar, n, *, mu_prior, tau_prior, tau_max, se=None, ssw=0.0,
     -------
     dict
         ``theta_mean``, ``theta_sd`` (per group), ``mu_mean``, ``tau`` grid and
-        its posterior weights ``tau_w``, and ``edge``: the posterior weight of
+        its posterior weights ``tau_w``, ``pooling_weight`` (per group, the
+        posterior mean of ``v_j / (v_j + tau^2)``: the weight of ``mu`` in
+        ``E[theta_j | mu, tau, sigma, y]``), and ``edge``: the posterior weight of
         the grid's last tau and sigma points relative to the largest (to check
         the grid covers the posterior).
     """
@@ -124,8 +130,9 @@ def exact_one_way(ybar, n, *, mu_prior, tau_prior, tau_max, se=None, ssw=0.0,
     edge = tau_w[-1] / tau_w.max()
     if se is None:
         edge = max(edge, sigma_w[-1] / sigma_w.max(), sigma_w[0] / sigma_w.max())
+    pooling_weight = np.einsum("ts,tsg->g", w, np.broadcast_to(v / V, V.shape))
     return {"theta_mean": theta_mean, "theta_sd": theta_sd, "mu_mean": float(np.sum(w * M)),
-            "tau": tau, "tau_w": tau_w, "edge": edge}
+            "tau": tau, "tau_w": tau_w, "pooling_weight": pooling_weight, "edge": edge}
 
 
 QUARTILES = (0.25, 0.5, 0.75)
@@ -149,7 +156,7 @@ def exact_with_grid_error(**kwargs):
     for result in (fine, coarse):
         result["tau_q"] = np.array([tau_quantile(result, q) for q in QUARTILES])
     error = {k: np.abs(np.asarray(fine[k]) - np.asarray(coarse[k]))
-             for k in ("theta_mean", "theta_sd", "mu_mean", "tau_q")}
+             for k in ("theta_mean", "theta_sd", "mu_mean", "tau_q", "pooling_weight")}
     return fine, error
 
 
@@ -221,6 +228,24 @@ def test_eight_schools_partial_pooling_is_the_exact_posterior(eight_schools):
     # The population mean too.
     mu = eight_schools.posterior.posterior["b"].sel(term="intercept", drop=True)
     assert abs(float(mu.mean()) - exact["mu_mean"]) <= MCSE_TOLERANCE * _mcse(mu, "mean") + grid_error["mu_mean"]
+
+
+@pytest.mark.slow
+def test_eight_schools_pooling_weight_is_the_exact_posterior_mean(eight_schools):
+    # Known SDs: v_j = se_j^2 exactly; the weight is the posterior mean of se_j^2 / (se_j^2 + tau^2).
+    data = pd.read_csv(DATA / "eight_schools.csv")
+    exact, grid_error = exact_with_grid_error(
+        ybar=data["effect"], n=np.ones(len(data)), se=data["se"], mu_prior=EIGHT_SCHOOLS_PRIORS["mu"],
+        tau_prior=stats.halfcauchy(scale=EIGHT_SCHOOLS_PRIORS["tau_beta"]), tau_max=800.0)
+    rows = _intercept_rows(eight_schools, "school").loc[data["school"]]
+    tau = eight_schools.posterior.posterior["school__sd"].sel(school__term="intercept", drop=True)
+    v = xr.DataArray(data["se"].to_numpy() ** 2, dims="school")
+    draws = v / (v + tau ** 2)
+    tol = MCSE_TOLERANCE * _mcse(draws, "mean") + grid_error["pooling_weight"] + 1e-9
+    assert np.all(np.abs(rows["pooling_weight"].to_numpy() - exact["pooling_weight"]) <= tol), (
+        rows["pooling_weight"].to_numpy(), exact["pooling_weight"], tol)
+    # The school with the largest SE is pooled most (Efron and Morris 1975): the order follows the SEs.
+    assert list(rows["pooling_weight"].rank()) == list(data["se"].rank())
 
 
 # --------------------------------------------------------------------------- dyestuff and rail
@@ -370,4 +395,25 @@ def test_cbpp_baselines_against_binomial_glm(cbpp):
     np.testing.assert_allclose(rows["complete_pooling"], pooled.params["Intercept"], atol=1e-6)
     expected = [separate.params[f"C(herd)[{h}]"] for h in herds]
     np.testing.assert_allclose(rows.loc[[str(h) for h in herds], "no_pooling"], expected, atol=1e-6)
-    assert rows.loc[[str(h) for h in herds], "n"].tolist() == data.groupby("herd").size().loc[herds].tolist()
+    assert rows.loc[[str(h) for h in herds], "rows"].tolist() == data.groupby("herd").size().loc[herds].tolist()
+    totals = data.groupby("herd")[["size", "incidence"]].sum().loc[herds]
+    assert rows.loc[[str(h) for h in herds], "trials"].tolist() == totals["size"].tolist()
+    assert rows.loc[[str(h) for h in herds], "events"].tolist() == totals["incidence"].tolist()
+
+
+@pytest.mark.slow
+def test_one_way_pooling_weight_is_the_exact_posterior_mean(one_way):
+    # A balanced one-factor normal design: v = sigma^2 / n for every group, so every group has the same
+    # weight, the posterior mean of (sigma^2 / n) / (sigma^2 / n + tau^2) over (tau, sigma).
+    name, c, run, data = one_way
+    ybar, exact, error = _exact_for(c, data)
+    rows = _intercept_rows(run, c["factor"]).loc[ybar.index]
+    post = run.posterior.posterior
+    n = data.groupby(c["factor"]).size().iloc[0]
+    tau = post[f"{c['factor']}__sd"].sel({f"{c['factor']}__term": "intercept"}, drop=True)
+    v = post["residual_sd"] ** 2 / n
+    draws = v / (v + tau ** 2)
+    tol = MCSE_TOLERANCE * _mcse(draws, "mean") + error["pooling_weight"].max()
+    assert np.all(np.abs(rows["pooling_weight"].to_numpy() - exact["pooling_weight"]) <= tol), (
+        name, rows["pooling_weight"].to_numpy(), exact["pooling_weight"], tol)
+    assert rows["pooling_weight"].nunique() == 1 and 0 < rows["pooling_weight"].iloc[0] < 1

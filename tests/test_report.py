@@ -12,7 +12,8 @@ import pytest
 
 from hierwork.errors import RunFolderError
 from hierwork.report.publish import render_report, write_report
-from hierwork.report import figures
+from hierwork.report import diagnostic_figures, estimate_figures
+from hierwork.report.plotting import Scale
 from hierwork.report.markdown import md_escape
 from hierwork.formatting import number as fmt
 from hierwork.report.verdict import CheckLine
@@ -105,7 +106,7 @@ def test_figures_embed_svg_without_scripts_and_have_text_alternatives(passing):
     _, html = passing
     page = Page(html)
     images = page.find("img")
-    assert len(images) == 5  # pooling, traces, energy, divergences, ppc
+    assert len(images) == 6  # sorted estimates, pooling, traces, energy, divergences, ppc (no funnel: normal)
     for _, attrs, _ in images:
         assert len(attrs["alt"]) > 40
         svg = base64.b64decode(attrs["src"].split(",", 1)[1]).decode()
@@ -120,7 +121,7 @@ def test_figures_embed_svg_without_scripts_and_have_text_alternatives(passing):
 def test_sections_come_in_the_promised_order(passing):
     _, html = passing
     ids = [a.get("id") for t, a, _ in Page(html).elements if t == "section"]
-    assert ids == ["verdict", "pooling", "estimates", "diagnostics", "fit", "provenance",
+    assert ids == ["verdict", "standout", "estimates", "pooling", "diagnostics", "fit", "provenance",
                    "caution"]
 
 
@@ -148,7 +149,7 @@ def test_failing_verdict_names_check_value_limit_parameter_and_advice(failing):
     assert "do not use them" in verdict
     # Estimates and pooling sections are marked, and every figure is stamped.
     page = Page(html)
-    for key in ("pooling", "estimates"):
+    for key in ("standout", "estimates", "pooling"):
         section = page.find("section", id=key)[0]
         assert "not-for-use" in section[1]["class"]
         assert "GATE FAILED \u2013 NOT FOR USE" in section[2]
@@ -171,7 +172,8 @@ def test_group_table_lists_every_group_with_its_csv_values(passing):
     table = pd.read_csv(run / "group_estimates.csv", keep_default_na=False)
     text = _text(html)
     for row in table.itertuples():
-        assert f"{row.group} {row.term} {row.n} {fmt(row.no_pooling)} {fmt(row.partial_mean)}" in text
+        assert (f"{row.group} {row.rows} {fmt(row.outcome_mean)} {fmt(row.outcome_lower)} {fmt(row.outcome_upper)} "
+                f"{fmt(row.no_pooling_outcome)} {fmt(row.pooling_weight, 2)}") in text
 
 
 def test_pooling_section_shows_the_recorded_pooling_factor(passing):
@@ -184,13 +186,14 @@ def test_pooling_section_shows_the_recorded_pooling_factor(passing):
 
 def test_pooling_alt_text_reports_smallest_and_largest_group(passing):
     run, html = passing
-    table = pd.read_csv(run / "group_estimates.csv", keep_default_na=False).sort_values("n")
-    alt = Page(html).find("figure", id="pooling-0")
-    img = [a for t, a, _ in Page(html).elements if t == "img"][0]
+    table = pd.read_csv(run / "group_estimates.csv", keep_default_na=False).sort_values("rows")
+    page = Page(html)
+    assert page.find("figure", id="pooling-farm-intercept")
+    img = [a for t, a, _ in page.elements if t == "img" and a["alt"].startswith("Pooling plot")][0]
     small, large = table.iloc[0], table.iloc[-1]
-    assert alt and (f"{small.group} (n={small.n}) moved from {fmt(small.no_pooling)} on its own "
-                    f"data to {fmt(small.partial_mean)}") in img["alt"]
-    assert f"{large.group} (n={large.n})" in img["alt"]
+    assert (f"{small.group} ({small.rows} rows) moved from {fmt(small.no_pooling_outcome)} on its own "
+            f"data to {fmt(small.outcome_mean)}") in img["alt"]
+    assert f"{large.group} ({large.rows} rows)" in img["alt"]
 
 
 def test_provenance_and_caution_are_present(passing):
@@ -213,7 +216,7 @@ def test_missing_files_are_named_and_the_rest_still_renders(run_root, tmp_path):
     assert "posterior.nc is missing: no diagnostic figures." in text
     assert "Pooling factor not recorded (pooling.csv is missing)." in text
     assert "No posterior predictive draws were stored" in text
-    assert len(Page(html).find("img")) == 1  # the pooling plot needs only the CSV
+    assert len(Page(html).find("img")) == 2  # the sorted estimates and the pooling plot need only the CSV
 
 
 def test_run_without_diagnostics_is_marked_unchecked(run_root, tmp_path):
@@ -263,15 +266,19 @@ def test_fmt_keeps_four_significant_digits():
 def test_thousands_of_groups_draw_a_capped_scatter():
     rng = np.random.default_rng(3)
     n = rng.integers(1, 50, 5000)
-    own = rng.normal(0, 1, 5000)
+    own = rng.uniform(0.01, 0.3, 5000)
     rows = pd.DataFrame({"factor": "depot", "group": [f"d{i}" for i in range(5000)],
-                         "term": "intercept", "n": n, "no_pooling": own,
-                         "complete_pooling": 0.0, "partial_mean": own * n / (n + 5),
-                         "lower": own - 1, "upper": own + 1})
-    plot = figures.pooling_plot(rows, "depot", "intercept", "bernoulli", 0.94)
+                         "term": "intercept", "rows": n, "no_pooling_outcome": own,
+                         "complete_pooling_outcome": 0.1, "outcome_mean": (own * n + 0.5) / (n + 5),
+                         "outcome_lower": own / 2, "outcome_upper": own * 1.5})
+    scale = Scale("probability", "probability of late")
+    plot = estimate_figures.pooling_plot(rows, "depot", "intercept", scale, 0.94)
     assert "Drawn: 3000 of 5000 groups" in plot.caption
-    assert "log-odds" in plot.svg
+    assert "probability of late (%)" in plot.svg
     assert "5000 groups" in plot.alt
+    ranked = estimate_figures.ranked_plot(rows, "depot", "intercept", scale, 0.94,
+                                          {"mean": 0.1, "lower": 0.09, "upper": 0.11})
+    assert "Drawn: 3000 of 5000 groups" in ranked.caption and "highest estimate first" in ranked.svg
 
 
 def test_count_outcome_ppc_compares_shares_per_value():
@@ -282,11 +289,11 @@ def test_count_outcome_ppc_compares_shares_per_value():
     idata = az.from_dict(posterior={"b": rng.normal(size=(2, 50, 1))},
                          posterior_predictive={"defects": rng.poisson(2.0, (2, 50, 80))},
                          observed_data={"defects": observed})
-    plot = figures.ppc_plot(idata)
+    plot = diagnostic_figures.ppc_plot(idata)
     assert plot.alt == ("Posterior predictive check of defects: the share of rows at each value "
                         "of the 80 observed values drawn over 40 data sets replicated from the "
                         "posterior.")
-    assert figures.ppc_plot(az.from_dict(posterior={"b": rng.normal(size=(2, 50))})) is None
+    assert diagnostic_figures.ppc_plot(az.from_dict(posterior={"b": rng.normal(size=(2, 50))})) is None
 
 
 def test_hyperparameters_follow_the_posterior_naming_contract():
@@ -304,22 +311,24 @@ def test_hyperparameters_follow_the_posterior_naming_contract():
         dims={"b": ["term"], "farm__sd": ["farm__term"], "farm__gamma": ["farm__predictor"],
               "farm__corr": ["farm__term", "farm__term_bis"],
               "farm__effect": ["farm", "farm__term"]})
-    labels = [label for label, _, _ in figures.hyperparameters(idata.posterior)]
+    labels = [label for label, _, _ in diagnostic_figures.hyperparameters(idata.posterior)]
     assert labels == ["b[intercept]", "b[nitrogen_kg]", "residual_sd", "farm__sd[intercept]",
                       "farm__sd[nitrogen_kg]", "farm__gamma[soil_carbon]"]
 
 
 def test_long_group_tables_are_cut_with_a_pointer_to_the_csv(run_root, monkeypatch):
-    from hierwork.report import html as report_html
+    from hierwork.report import groups
 
-    monkeypatch.setattr(report_html, "MAX_TABLE_ROWS", 5)
-    page = Page(render_report(build_run(run_root)))
+    monkeypatch.setattr(groups, "MAX_TABLE_ROWS", 5)
+    html = render_report(build_run(run_root))
+    page = Page(html)
     section = page.find("section", id="estimates")[0][2]
-    assert "Showing the first 5 of 12 rows; all are in group_estimates.csv in the run folder." in section
+    assert "Showing the highest 5 of 12 groups; all are in group_estimates.csv in the run folder." in section
     assert page.find("a", href="group_estimates.csv")
-    group_table = [a for t, a, _ in page.elements if t == "table" and "sortable" in a.get("class", "")]
-    assert len(group_table) == 1
-    # Header plus rows: 5 groups, the parameters of summary.csv, every gate check.
-    summary = pd.read_csv(build_run(run_root) / "summary.csv")
-    checks = json.loads((build_run(run_root) / "diagnostics.json").read_text())["checks"]
-    assert len(page.find("tr")) == (1 + 5) + (1 + len(summary)) + (1 + len(checks))
+    # The group table: a header and 5 groups, highest estimate first.
+    table = re.search(r'<caption class="sr-only">Group estimates: farm, intercept</caption>(.*?)</table>', html, re.S)
+    assert table.group(1).count("<tr>") == 1 + 5
+    estimates = pd.read_csv(build_run(run_root) / "group_estimates.csv", keep_default_na=False)
+    highest = estimates.sort_values("outcome_mean", ascending=False)["group"].head(5)
+    cells = [text for _, a, text in Page(table.group(1)).find("td", **{"class": "label"})]
+    assert cells == list(highest)

@@ -38,7 +38,8 @@ def test_api_walkthrough_runs(tmp_path, monkeypatch):
     texts, notebook = _execute("01_api_walkthrough.ipynb", tmp_path, monkeypatch)
     run = tmp_path / "wheat"
     assert (run / "report.html").is_file() and (run / "summary.md").is_file()
-    assert any("Pooling plot for farm, intercept, 30 groups" in t for t in texts)
+    assert any("Pooling plot for farm, expected outcome, 30 groups" in t for t in texts)
+    assert any("pooling_weight" in t for t in texts)
     assert sum(_has_svg(c) for c in notebook.cells) == 3
     assert any(t.startswith("# Wheat yield across 30 farms") for t in texts)
 
@@ -52,4 +53,5 @@ def test_failing_to_passing_runs(tmp_path, monkeypatch):
     assert "Bulk ESS" in joined and "must be at least 400" in joined
     assert "Spec differences" in joined and "sampling.draws" in joined
     assert (tmp_path / "depots-longer" / "report.html").is_file()
+    assert "outcome_mean" in joined and "p_above_population" in joined  # the outcome's scale
     assert any(_has_svg(c) for c in notebook.cells)

@@ -10,8 +10,9 @@ def register(sub) -> None:
                        description="Posterior predictive summaries for the rows of NEW.csv: known groups "
                                    "use their fitted effects, unseen groups draw theirs from the fitted "
                                    "population distribution. Writes the input columns plus pred_mean, "
-                                   "pred_sd, pred_lower, pred_upper, link_mean, link_lower, link_upper "
-                                   "and group_status.")
+                                   "pred_sd, pred_lower, pred_upper (the row's outcome), outcome_mean, "
+                                   "outcome_lower, outcome_upper (its expected value on the outcome's "
+                                   "scale), link_mean, link_lower, link_upper and group_status.")
     p.add_argument("run", metavar="RUN", help="run folder written by 'hierwork fit'")
     p.add_argument("new", metavar="NEW.csv", help="rows to predict (CSV or Parquet)")
     p.add_argument("--out", metavar="FILE.csv", help="write the predictions here (default: standard output)")

@@ -24,8 +24,10 @@ class Key:
     """One entry of the spec's key table.
 
     ``kind`` is one of ``str int float bool choice list section named prior
-    predictor batch``; ``section`` has fixed ``fields``; ``named`` maps user-chosen
+    predictor reference batch``; ``section`` has fixed ``fields`` (a section
+    whose default is None stays None when absent); ``named`` maps user-chosen
     names to values of schema ``item``; ``list`` holds items of schema ``item``;
+    ``reference`` is text or a number, kept as written;
     ``batch`` values are validated by ``check(value, where)`` (variants and remedies parsers).
     """
 
@@ -112,6 +114,27 @@ SPEC_KEYS = {
                         low=0.5, high=1.0, open_high=True),
         "compare_pooling": Key("bool", "Also fit complete and no pooling and compare all three by PSIS-LOO "
                                "(pooling_comparison.csv; two more small fits).", False),
+        "at": Key("named", "Reference values at which groups are compared, by predictor: 'mean' (of the "
+                  "data), 'zero', a number, or a level of a categorical predictor (default: 'mean' for "
+                  "numeric predictors, the reference level for categorical ones).", {},
+                  item=Key("reference", "mean, zero, a number or a level")),
+        "rate_per": Key("float", "Poisson / negative binomial: rates are per this many units of exposure "
+                        "(e.g. 1000 for a rate per 1,000 hours).", 1.0, low=0, open_low=True),
+        "target": Key("section", "A value on the outcome's scale to judge groups against: "
+                      "p_beyond_target per group.", None, fields={
+                          "value": Key("float", "The target (a probability, a rate per rate_per, or the "
+                                       "outcome's units)."),
+                          "direction": Key("choice", "Which side of the value is beyond the target.", "above",
+                                           choices=("above", "below")),
+                      }),
+        "rank_k": Key("int", "p_top and p_bottom: probability of being among the k highest or lowest groups.",
+                      3, low=1),
+        "contrasts": Key("list", "Pairs of groups to compare on the outcome's scale (contrasts.csv).", [],
+                         item=Key("section", "a pair of groups of one factor", fields={
+                             "factor": Key("str", "The grouping factor (a name under 'groups')."),
+                             "groups": Key("list", "Two group labels [A, B]: the difference is A - B.",
+                                           item=Key("str", "a group label")),
+                         })),
     }),
     # -- batch keys (owned by hierwork/batch, see docs/batch.md; 'fit' ignores them) --
     "variants": Key("batch", "Named variants ([{name, set: {dotted.key: value}}]) or a cartesian "

@@ -57,6 +57,8 @@ def _schema_of(key: Key) -> dict:
             out["pattern"] = key.pattern.pattern
     elif key.kind == "bool":
         out["type"] = "boolean"
+    elif key.kind == "reference":
+        out["type"] = ["string", "number"]
     return out
 
 
@@ -75,7 +77,7 @@ def key_rows(keys: dict, prefix: str = "") -> list:
             rows += key_rows(key.fields, f"{path}.")
         elif key.kind == "named" and key.item.kind == "section":
             rows += key_rows(key.item.fields, f"{path}.NAME.")
-        elif key.kind == "list" and key.item.kind == "predictor":
+        elif key.kind == "list" and key.item.kind in ("predictor", "section"):
             rows += key_rows(key.item.fields, f"{path}[].")
     return rows
 
@@ -84,7 +86,8 @@ def _type(key: Key) -> str:
     if key.kind == "choice":
         return " \\| ".join(f"`{c}`" for c in key.choices)
     return {"named": "mapping", "section": "mapping", "predictor": "name or mapping",
-            "prior": "`{dist: {param: value}}`"}.get(key.kind, key.kind)
+            "prior": "`{dist: {param: value}}`",
+            "reference": "`mean` \\| `zero` \\| number \\| level"}.get(key.kind, key.kind)
 
 
 def _default(key: Key) -> str:

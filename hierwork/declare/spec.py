@@ -11,6 +11,7 @@ import math
 from dataclasses import dataclass, field
 from pathlib import Path
 
+from hierwork.declare.estimates import check_estimates
 from hierwork.declare.keys import REQUIRED, SPEC_KEYS, Key
 from hierwork.declare.yamlsource import YamlDocument, join, read_yaml
 from hierwork.errors import SpecError, choices_hint
@@ -95,6 +96,11 @@ class Spec:
         return self.values["estimates"]["interval"]
 
     @property
+    def estimates(self) -> dict:
+        """The ``estimates`` section (reference values, target, ranks, contrasts), defaults filled in."""
+        return self.values["estimates"]
+
+    @property
     def path(self) -> Path:
         return self.document.path
 
@@ -158,6 +164,7 @@ def spec_from_document(document: YamlDocument) -> Spec:
         for name, f in values["groups"].items()
     )
     _check_factors(factors, predictors, document)
+    check_estimates(values, outcome, predictors, factors, document)
     priors = {k: PriorSpec(*next(iter(v.items()))) for k, v in values["priors"].items()}
     return Spec(values=values, document=document, data_path=data_path, outcome=outcome,
                 predictors=predictors, factors=factors, priors=priors)
@@ -199,7 +206,7 @@ def _validate_section(content, keys: dict, path: str, doc: YamlDocument) -> dict
         elif key.default is REQUIRED:
             raise SpecError(f"missing required key {name!r}", where=doc.where(path) if path else str(doc.path),
                             hint=key.doc)
-        elif key.kind == "section":
+        elif key.kind == "section" and key.default is not None:
             out[name] = _validate_section({}, key.fields, child, doc)
         else:
             out[name] = key.default
@@ -245,6 +252,11 @@ def _validate_value(value, key: Key, path: str, doc: YamlDocument):
         return value
     if kind in ("int", "float"):
         return _validate_number(value, key, where)
+    if kind == "reference":
+        if isinstance(value, bool) or not isinstance(value, (str, int, float)):
+            raise SpecError(f"expected 'mean', 'zero', a number or a level, got {_show(value)}", where=where,
+                            hint=key.doc)
+        return value
     if kind == "batch":
         key.check(value, where)
         return value

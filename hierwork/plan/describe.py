@@ -38,6 +38,7 @@ def plan_as_dict(plan, decisions: dict | None = None) -> dict:
         } for f in plan.factors],
         "priors": {k: p.to_dict() for k, p in plan.priors.items()},
         "notes": list(plan.notes),
+        "estimands": plan.estimands.to_dict(),
         **(decisions or {}),
     }
 
@@ -66,7 +67,9 @@ def describe(plan, decisions: list) -> str:
              f"  data     {spec.data_path} ({plan.n:,} rows used)",
              f"  outcome  {outcome.column}: {plan.family.name}, {plan.family.link} link"
              + (f" ({'; '.join(extras)})" if extras else ""),
-             f"  terms    {', '.join(plan.terms)}"]
+             f"  terms    {', '.join(plan.terms)}",
+             f"  groups compared at  {plan.estimands.text()}",
+             f"  outcome scale       {plan.estimands.label}"]
     for f in plan.factors:
         nest = f", nested in {f.parent}" if f.parent else ""
         lines += ["", f"factor {f.name} (column {f.column!r}{nest}): rows per group", *_size_table(f),

@@ -4,7 +4,9 @@ The plan is everything the model builders need and nothing they must work
 out: the family, the population design matrix in the data's own units (and the
 :class:`~hierwork.plan.design.Design` that made it), each factor's group index
 and labels, the varying columns, group-level predictors, the nesting map,
-resolved priors (defaults marked) and the sampling form of each factor.
+resolved priors (defaults marked), the sampling form of each factor, and the
+estimands (:mod:`hierwork.plan.estimands`: reference values, outcome scale,
+target, contrasts).
 """
 from __future__ import annotations
 
@@ -15,6 +17,7 @@ import pandas as pd
 
 from hierwork.plan import parameterisation, priors
 from hierwork.plan.design import Design
+from hierwork.plan.estimands import estimands_of
 from hierwork.plan.families import get_family
 from hierwork.plan.families.base import Family, OutcomeRows
 
@@ -76,6 +79,7 @@ class ModelPlan:
     priors: dict
     notes: tuple = field(default_factory=tuple)
     data_sha256: str = ""
+    estimands: object = None  # plan.estimands.Estimands: reference values, outcome scale, target, contrasts
 
     @property
     def terms(self) -> tuple:
@@ -136,7 +140,8 @@ def make_plan(spec, dataset) -> ModelPlan:
     priors.check_lkj_keys(spec)
     resolved = priors.apply_user_priors(resolved, spec, design.level_terms())
     return ModelPlan(spec=spec, family=family, outcome=rows, design=design, X=X, factors=tuple(factor_plans),
-                     priors=resolved, notes=design.notes, data_sha256=dataset.sha256)
+                     priors=resolved, notes=design.notes, data_sha256=dataset.sha256,
+                     estimands=estimands_of(spec, design, X, factor_plans, family))
 
 
 def _factor_plan(f, frame, labels, X, design, done, z, var) -> FactorPlan:

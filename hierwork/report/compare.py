@@ -14,7 +14,7 @@ from dataclasses import dataclass
 import numpy as np
 import pandas as pd
 
-from hierwork.report.html import data_table, page
+from hierwork.report.page import data_table, page
 from hierwork.report.markup import el
 from hierwork.formatting import number as fmt
 from hierwork.report.verdict import verdict

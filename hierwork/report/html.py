@@ -1,108 +1,28 @@
-"""The self-contained ``report.html`` of a run folder.
+"""The self-contained ``report.html`` of a run folder (document and tables: :mod:`hierwork.report.page`).
 
-One file: inline CSS, figures as data URIs, a few lines of inline script to
-sort tables, and a Content-Security-Policy that lets the page load nothing
-from anywhere (``default-src 'none'``; only data-URI images and the exact
-inline style and script, by hash). Every user-controlled string is escaped by
-:mod:`hierwork.report.markup`.
-
-Sections, in order: verdict, pooling picture, estimate tables, sampler
-diagnostics, posterior predictive check and LOO, provenance, caution.
+Sections, in order: verdict; what stands out (:mod:`hierwork.report.standout`);
+estimates on the outcome's scale and how much each group was pooled
+(:mod:`hierwork.report.groups`); sampler diagnostics; posterior predictive
+check and LOO; provenance; caution. Every figure is registered in a
+:class:`~hierwork.report.page.FigureSink` when one is given, so that
+:func:`hierwork.report.publish.write_report` saves it under ``figures/``.
 """
 from __future__ import annotations
 
-import base64
-import hashlib
 import math
-from importlib import resources
 
-import pandas as pd
-
-from hierwork.report import figures
+from hierwork.report import diagnostic_figures as figures
+from hierwork.report.groups import estimates_section, pooling_section
 from hierwork.report.markup import Raw, el
-from hierwork.formatting import number as fmt
+from hierwork.report.page import CAUTION, STAMP, FigureSink, data_table, figure_element, page
+from hierwork.report.standout import standout_section
 from hierwork.report.verdict import Verdict, verdict
+from hierwork.report.view import View
 from hierwork.runfolder import Run
 
-__all__ = ["render_html", "CAUTION", "page", "data_table"]
+__all__ = ["render_html"]
 
-CAUTION = ("These are model-based estimates. They depend on the model, its priors and the "
-           "data, and carry the uncertainty shown. Decisions about people's health or safety "
-           "need review by a qualified analyst and must follow local rules.")
-#: Rows of the group table written into the page; the CSV has them all.
-MAX_TABLE_ROWS = 2000
 _MARK = {"passed": "\u2714", "failed": "\u2716", "unknown": "?"}
-#: Printed across every figure, and above every table, of a run whose gate did not pass.
-_STAMP = {"failed": "GATE FAILED \u2013 NOT FOR USE", "unknown": "NOT CHECKED \u2013 NOT FOR USE"}
-
-
-def _asset(name: str) -> str:
-    return resources.files("hierwork.report").joinpath(name).read_text(encoding="utf-8")
-
-
-def _hash(text: str) -> str:
-    return "'sha256-" + base64.b64encode(hashlib.sha256(text.encode()).digest()).decode() + "'"
-
-
-def page(title: str, body: Raw, script: bool = True) -> str:
-    """A complete HTML document with the report's style, ``body`` and (optionally)
-    the table-sorting script, locked down by a Content-Security-Policy."""
-    css = _asset("style.css")
-    js = _asset("sort.js") if script else ""
-    policy = (f"default-src 'none'; img-src data:; style-src {_hash(css)}; "
-              f"script-src {_hash(js) if js else chr(39) + 'none' + chr(39)}; "
-              "base-uri 'none'; form-action 'none'")
-    head = el("head",
-              el("meta", charset="utf-8"),
-              el("meta", http_equiv="Content-Security-Policy", content=policy),
-              el("meta", name="viewport", content="width=device-width, initial-scale=1"),
-              el("meta", name="generator", content="hierwork"),
-              el("title", title),
-              Raw(f"<style>{css}</style>"))
-    tail = Raw(f"<script>{js}</script>") if js else Raw("")
-    return "<!DOCTYPE html>\n" + el("html", head, el("body", body, tail), lang="en") + "\n"
-
-
-def _figure(plot: figures.Plot | None, missing: str, key: str) -> Raw:
-    if plot is None:
-        return el("p", missing, class_="note")
-    return el("figure",
-              el("img", src=plot.uri, alt=plot.alt, loading="lazy"),
-              el("figcaption", plot.caption), id=key)
-
-
-def _number_cell(value, bad: bool = False) -> Raw:
-    number = float(value) if value is not None and not isinstance(value, str) else math.nan
-    text = [fmt(value)]
-    if bad:
-        text += [" \u26a0", el("span", " (fails the gate)", class_="sr-only")]
-    return el("td", text, data_value="NaN" if math.isnan(number) else repr(number),
-              class_="bad" if bad else None)
-
-
-def data_table(frame: pd.DataFrame, labels: dict, caption: str, sortable: bool,
-           bad=lambda column, value: False) -> Raw:
-    """A table of ``frame``'s columns named in ``labels`` (column -> header).
-
-    ``bad(column, value)`` marks cells (e.g. beyond a gate limit); ``sortable``
-    adds header buttons handled by the page's sort script.
-    """
-    columns = [c for c in labels if c in frame.columns]
-    text_columns = {c for c in columns if not pd.api.types.is_numeric_dtype(frame[c])}
-
-    def header(c):
-        content = el("button", labels[c], type="button") if sortable else labels[c]
-        return el("th", content, scope="col", class_="label" if c in text_columns else None)
-
-    rows = []
-    for record in frame[columns].itertuples(index=False):
-        cells = [el("td", v, class_="label") if c in text_columns else _number_cell(v, bad(c, v))
-                 for c, v in zip(columns, record)]
-        rows.append(el("tr", cells))
-    return el("div", el("table", el("caption", caption, class_="sr-only"),
-                        el("thead", el("tr", [header(c) for c in columns])),
-                        el("tbody", rows), class_="sortable" if sortable else None),
-              class_="scroll")
 
 
 # --- sections ----------------------------------------------------------------------
@@ -145,54 +65,6 @@ def _facts(run: Run) -> list[str]:
     return facts
 
 
-def _banner(stamp: str | None) -> Raw:
-    if not stamp:
-        return Raw("")
-    return el("p", f"{stamp}: these numbers are shown only to diagnose the fit.",
-              class_="banner")
-
-
-def _pooling_factor_text(run: Run, factor: str, term: str) -> Raw:
-    table = run.pooling
-    if table is None:
-        return el("p", f"Pooling factor not recorded (pooling.csv is missing).", class_="note")
-    row = table[(table["factor"] == factor) & (table["term"] == term)]
-    if row.empty:
-        return el("p", f"Pooling factor not recorded for {factor}, {term}.", class_="note")
-    value = row["pooling_factor"].iloc[0]
-    return el("p", el("strong", f"Pooling factor \u03bb = {fmt(value, 2)}"),
-              " (Gelman and Pardoe 2006: 1 \u2212 variance across groups of the posterior mean "
-              "effects \u00f7 posterior mean of the variance across groups of the effects). Near "
-              "0 each group keeps its own estimate; near 1 all are pulled to the population "
-              "value.", class_="lambda")
-
-
-def _pooling_section(run: Run, stamp: str | None) -> Raw:
-    table = run.group_estimates
-    content = []
-    if table is None:
-        content.append(el("p", "group_estimates.csv is missing: no pooling picture.", class_="note"))
-    else:
-        keys = table[["factor", "term"]].drop_duplicates().itertuples(index=False)
-        for number, (factor, term) in enumerate(keys):
-            rows = table[(table["factor"] == factor) & (table["term"] == term)]
-            plot = figures.pooling_plot(rows, factor, term, run.family, run.interval, stamp)
-            content += [el("h3", f"{factor} \u2014 {term}"),
-                        _pooling_factor_text(run, factor, term),
-                        _figure(plot, "", f"pooling-{number}")]
-    return el("section", el("h2", "How much each group was pooled"), _banner(stamp),
-              content, id="pooling", class_="not-for-use" if stamp else None)
-
-
-_GROUP_COLUMNS = {"factor": "factor", "group": "group", "term": "term", "n": "n",
-                  "no_pooling": "own data only", "partial_mean": "partial pooling mean",
-                  "partial_sd": "posterior sd", "lower": "lower", "upper": "upper",
-                  "complete_pooling": "complete pooling", "shrinkage": "shrinkage"}
-_SUMMARY_COLUMNS = {"parameter": "parameter", "mean": "mean", "sd": "sd", "lower": "lower",
-                    "upper": "upper", "ess_bulk": "bulk ESS", "ess_tail": "tail ESS",
-                    "r_hat": "R-hat"}
-
-
 def _gate_breaches(v: Verdict):
     """Return ``bad(column, value)`` flagging summary cells beyond the gate's limits."""
     limits = {c.name: c for c in v.checks if c.name in ("r_hat", "ess_bulk", "ess_tail")}
@@ -209,36 +81,6 @@ def _gate_breaches(v: Verdict):
     return bad
 
 
-def _estimates_section(run: Run, v: Verdict, stamp: str | None) -> Raw:
-    level = f"{run.interval:.0%}"
-    content = [_banner(stamp), el("h3", "Group estimates")]
-    table = run.group_estimates
-    if table is None:
-        content.append(el("p", "group_estimates.csv is missing.", class_="note"))
-    else:
-        shown = table.head(MAX_TABLE_ROWS)
-        content.append(el("p", f"Each group's coefficient on the {figures.scale_name(run.family)} "
-                          f"scale with population predictors at 0; lower and upper bound the "
-                          f"central {level} posterior interval. Press a column heading to sort.",
-                          class_="note"))
-        if len(table) > len(shown):
-            content.append(el("p", f"Showing the first {len(shown)} of {len(table)} rows; all are "
-                              "in ", el("a", "group_estimates.csv", href="group_estimates.csv"),
-                              " in the run folder.", class_="note"))
-        content.append(data_table(shown, _GROUP_COLUMNS, "Group estimates", sortable=True))
-    content.append(el("h3", "Population and variance parameters"))
-    if run.summary is None:
-        content.append(el("p", "summary.csv is missing.", class_="note"))
-    else:
-        content.append(el("p", f"Posterior mean, sd and central {level} interval; values beyond "
-                          "the gate's limits are marked \u26a0.", class_="note"))
-        shown = run.summary.round({"ess_bulk": 0, "ess_tail": 0})
-        content.append(data_table(shown, _SUMMARY_COLUMNS, "Population and variance parameters",
-                              sortable=False, bad=_gate_breaches(v)))
-    return el("section", el("h2", "Estimates"), content, id="estimates",
-              class_="not-for-use" if stamp else None)
-
-
 def _checks_table(v: Verdict) -> Raw:
     if not v.checks:
         return el("p", "diagnostics.json is missing: no checks to show.", class_="note")
@@ -251,7 +93,7 @@ def _checks_table(v: Verdict) -> Raw:
     return el("div", el("table", el("thead", head), el("tbody", rows)), class_="scroll")
 
 
-def _diagnostics_section(run: Run, idata, v: Verdict, stamp: str | None) -> Raw:
+def _diagnostics_section(run: Run, idata, v: Verdict, stamp: str | None, sink: FigureSink | None) -> Raw:
     bfmi = next((c.value for c in v.checks if c.name == "bfmi"), None)
     content = [el("h3", "Gate checks"), _checks_table(v)]
     if idata is None:
@@ -259,22 +101,22 @@ def _diagnostics_section(run: Run, idata, v: Verdict, stamp: str | None) -> Raw:
     else:
         content += [
             el("h3", "Traces and rank plots"),
-            _figure(figures.trace_rank_plot(idata, stamp),
-                    "No population or variance parameters found in posterior.nc.", "traces"),
+            figure_element(figures.trace_rank_plot(idata, stamp),
+                           "No population or variance parameters found in posterior.nc.", "traces", sink),
             el("h3", "Energy"),
-            _figure(figures.energy_plot(idata, bfmi, stamp),
-                    "posterior.nc holds no sampler energy (sample_stats.energy).", "energy"),
+            figure_element(figures.energy_plot(idata, bfmi, stamp),
+                           "posterior.nc holds no sampler energy (sample_stats.energy).", "energy", sink),
             el("h3", "Where divergences happened"),
-            _figure(figures.divergence_plot(idata, run.group_estimates, stamp),
-                    "No group standard deviation or divergence record in posterior.nc.",
-                    "divergences")]
+            figure_element(figures.divergence_plot(idata, run.group_estimates, stamp),
+                           "No group standard deviation or divergence record in posterior.nc.",
+                           "divergences", sink)]
     return el("section", el("h2", "Sampler diagnostics"), content, id="diagnostics")
 
 
-def _fit_section(run: Run, idata, stamp: str | None) -> Raw:
+def _fit_section(run: Run, idata, stamp: str | None, sink: FigureSink | None) -> Raw:
     ppc = None if idata is None else figures.ppc_plot(idata, stamp)
     content = [el("h3", "Posterior predictive check"),
-               _figure(ppc, "No posterior predictive draws were stored in posterior.nc.", "ppc"),
+               figure_element(ppc, "No posterior predictive draws were stored in posterior.nc.", "ppc", sink),
                el("h3", "LOO comparison of pooling choices")]
     if run.pooling_comparison is None:
         content.append(el("p", f"Not stored (pooling_comparison.csv is absent from the run folder).",
@@ -319,9 +161,9 @@ def _fitted(run: Run) -> str:
 
 
 def _header(run: Run) -> Raw:
-    links = [("verdict", "Verdict"), ("pooling", "Pooling"), ("estimates", "Estimates"),
-             ("diagnostics", "Diagnostics"), ("fit", "Fit"), ("provenance", "Provenance"),
-             ("caution", "Caution")]
+    links = [("verdict", "Verdict"), ("standout", "What stands out"), ("estimates", "Estimates"),
+             ("pooling", "Pooling"), ("diagnostics", "Diagnostics"), ("fit", "Fit"),
+             ("provenance", "Provenance"), ("caution", "Caution")]
     return el("header",
               el("h1", run.title),
               el("p", f"Run {run.name}", _fitted(run)),
@@ -329,18 +171,20 @@ def _header(run: Run) -> Raw:
                  aria_label="Sections"))
 
 
-def render_html(run: Run) -> str:
-    """The report of ``run`` (a :class:`~hierwork.runfolder.Run`)."""
+def render_html(run: Run, sink: FigureSink | None = None) -> str:
+    """The report of ``run`` (a :class:`~hierwork.runfolder.Run`); its figures go into ``sink`` if given."""
     v = verdict(run.diagnostics)
-    stamp = _STAMP.get(v.status)
+    stamp = STAMP.get(v.status)
     idata = run.posterior
+    view = View.of(run)
     body = el("main",
               _header(run),
               _verdict_section(run, v),
-              _pooling_section(run, stamp),
-              _estimates_section(run, v, stamp),
-              _diagnostics_section(run, idata, v, stamp),
-              _fit_section(run, idata, stamp),
+              standout_section(view, stamp),
+              estimates_section(view, _gate_breaches(v), stamp, sink),
+              pooling_section(view, stamp, sink),
+              _diagnostics_section(run, idata, v, stamp, sink),
+              _fit_section(run, idata, stamp, sink),
               _provenance_section(run),
               el("section", el("h2", "Caution"), el("p", CAUTION), id="caution",
                  class_="caution"))

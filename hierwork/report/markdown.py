@@ -1,6 +1,8 @@
-"""``summary.md``: the verdict and headline tables in Markdown.
+"""``summary.md``: the verdict, what stands out and the headline tables in Markdown.
 
-For pull requests and wikis. User-controlled text is escaped so that it shows
+For pull requests and wikis; it leads with the outcome's scale, like the HTML
+report, and keeps the model's parameters in a ``<details>`` block when they are
+on another (link) scale. User-controlled text is escaped so that it shows
 literally: Markdown punctuation gets a backslash and ``< > &`` become HTML
 entities (many Markdown renderers pass raw HTML through).
 """
@@ -10,9 +12,11 @@ import re
 
 import pandas as pd
 
-from hierwork.report.html import CAUTION
 from hierwork.formatting import number as fmt
+from hierwork.report.page import CAUTION
+from hierwork.report.standout import factor_sentences, standing_out
 from hierwork.report.verdict import verdict
+from hierwork.report.view import View
 from hierwork.runfolder import Run
 
 __all__ = ["render_markdown", "md_escape"]
@@ -32,20 +36,71 @@ def md_escape(value) -> str:
     return _SPECIAL.sub(r"\\\1", text)
 
 
-def _table(frame: pd.DataFrame, columns: dict) -> list[str]:
+def _table(frame: pd.DataFrame, columns: dict, shown: dict | None = None) -> list[str]:
     cols = [c for c in columns if c in frame.columns]
-    lines = ["| " + " | ".join(columns[c] for c in cols) + " |",
+    shown = shown or {}
+    lines = ["| " + " | ".join(md_escape(columns[c]) for c in cols) + " |",
              "|" + "|".join("---" if pd.api.types.is_numeric_dtype(frame[c]) is False else "---:"
                             for c in cols) + "|"]
     for record in frame[cols].itertuples(index=False):
-        cells = [fmt(v) if pd.api.types.is_number(v) else md_escape(v) for v in record]
+        cells = [md_escape(shown[c](v)) if c in shown else fmt(v) if pd.api.types.is_number(v) else md_escape(v)
+                 for c, v in zip(cols, record)]
         lines.append("| " + " | ".join(cells) + " |")
+    return lines
+
+
+def _standout(view: View) -> list[str]:
+    lines = ["## What stands out", ""]
+    if not view.ready:
+        return lines + ["group\\_estimates.csv has no outcome-scale columns: refit to see them.", ""]
+    lines += [md_escape(f"Groups are compared at {view.compared_at}, on the scale of {view.scale.label}."), ""]
+    population = view.population("intercept")
+    if population:
+        lines += [md_escape(f"Population value (a typical group): {view.scale.text(population['mean'])} "
+                            f"({view.level} interval {view.scale.text(population['lower'])} to "
+                            f"{view.scale.text(population['upper'])})."), ""]
+    for factor, term in view.keys():
+        lines += [f"- {md_escape(line)}" for line in factor_sentences(view, factor, term)]
+        rows = pd.concat(standing_out(view, factor, term)).drop_duplicates(["group"])
+        if len(rows):
+            columns = {"group": "group", "outcome_mean": "estimate", "outcome_lower": f"{view.level} lower",
+                       "outcome_upper": f"{view.level} upper", "p_above_population": "P(above population)",
+                       **({"p_beyond_target": "P(beyond target)"} if view.target and term == "intercept" else {}),
+                       "rank_median": "rank"}
+            lines += ["", *_table(rows.sort_values("outcome_mean", ascending=False).head(MAX_GROUP_ROWS), columns,
+                                  view.cells(term != "intercept"))]
+        lines.append("")
+    contrasts = view.run.contrasts
+    if contrasts is not None and len(contrasts):
+        lines += ["### Contrasts", "", *_table(contrasts, {
+            "factor": "factor", "group_a": "A", "group_b": "B", "term": "term", "difference": "A - B",
+            "lower": f"{view.level} lower", "upper": f"{view.level} upper", "p_positive": "P(A higher)"},
+            view.cells(True)), ""]
+    return lines
+
+
+def _groups(view: View) -> list[str]:
+    if not view.ready:
+        return []
+    lines = ["## Group estimates", "", md_escape(f"On the scale of {view.scale.label}; highest first."), ""]
+    for factor, term in view.keys():
+        rows = view.rows(factor, term).sort_values("outcome_mean", ascending=False, kind="stable")
+        shown = rows.head(MAX_GROUP_ROWS)
+        lines += [f"### {md_escape(factor)}: {md_escape(term)}", ""]
+        if len(rows) > len(shown):
+            lines += [f"The {len(shown)} highest of {len(rows)} groups; all are in group\\_estimates.csv.", ""]
+        lines += _table(shown, {"group": "group", "rows": "rows", "trials": "trials", "exposure": "exposure",
+                                "outcome_mean": "estimate", "outcome_lower": f"{view.level} lower",
+                                "outcome_upper": f"{view.level} upper", "no_pooling_outcome": "own data only",
+                                "pooling_weight": "pooling weight", "rank_median": "rank"},
+                        view.cells(term != "intercept")) + [""]
     return lines
 
 
 def render_markdown(run: Run) -> str:
     """The ``summary.md`` text of ``run``."""
     v = verdict(run.diagnostics)
+    view = View.of(run)
     lines = [f"# {md_escape(run.title)}", "", f"**{md_escape(v.headline)}**", ""]
     if v.failed:
         lines += [f"- {md_escape(c.sentence())}" for c in v.failed] + [""]
@@ -53,28 +108,20 @@ def render_markdown(run: Run) -> str:
         lines += ["What to try:", ""] + [f"- {md_escape(a)}" for a in v.advice if a] + [""]
     if v.status != "passed":
         lines += ["> **Not for use:** the estimates below are shown only to diagnose the fit.", ""]
+    lines += _standout(view) + _groups(view)
     level = f"{run.interval:.0%}"
     if run.summary is not None:
-        lines += ["## Population and variance parameters", "",
-                  *_table(run.summary.round({"ess_bulk": 0}), {"parameter": "parameter", "mean": "mean", "sd": "sd",
-                                        "lower": f"{level} lower", "upper": f"{level} upper",
-                                        "r_hat": "R-hat", "ess_bulk": "bulk ESS"}), ""]
+        link, name = view.link
+        title = "Model parameters" + ("" if link == "identity" else f" ({md_escape(name)} scale)")
+        table = _table(run.summary.round({"ess_bulk": 0}), {
+            "parameter": "parameter", "mean": "mean", "sd": "sd", "lower": f"{level} lower",
+            "upper": f"{level} upper", "r_hat": "R-hat", "ess_bulk": "bulk ESS"})
+        lines += ([f"## {title}", "", *table, ""] if link == "identity" else
+                  [f"<details><summary>{title}</summary>", "", *table, "", "</details>", ""])
     if run.pooling is not None:
         lines += ["## Pooling factor (Gelman and Pardoe 2006)", "",
                   *_table(run.pooling, {"factor": "factor", "term": "term",
                                         "n_groups": "groups", "pooling_factor": "lambda"}), ""]
-    if run.group_estimates is not None:
-        lines += ["## Group estimates", ""]
-        for (factor, term), rows in run.group_estimates.groupby(["factor", "term"], sort=False):
-            lines += [f"### {md_escape(factor)}: {md_escape(term)}", ""]
-            shown = rows.sort_values("n", kind="stable").head(MAX_GROUP_ROWS)
-            if len(rows) > len(shown):
-                lines += [f"The {len(shown)} smallest of {len(rows)} groups; all are in "
-                          "group\\_estimates.csv.", ""]
-            lines += _table(shown, {"group": "group", "n": "n", "no_pooling": "own data only",
-                                    "partial_mean": "partial pooling",
-                                    "lower": f"{level} lower", "upper": f"{level} upper",
-                                    "complete_pooling": "complete pooling"}) + [""]
     reproduce = (run.provenance or {}).get("reproduce")
     if reproduce:
         lines += ["## Reproduce", "", "```", str(reproduce).replace("```", "'''"), "```", ""]

@@ -3,9 +3,17 @@
 * **Complete pooling**: one coefficient per population term for everyone (plus
   group-level predictors at row level), same family.
 * **No pooling**: per factor, a separate coefficient for every group and varying
-  term (group indicator columns), with the same non-varying population terms
-  and the same family; other factors and group-level predictors are left out
-  (group indicators absorb them).
+  term (group indicator columns), with the same non-varying population terms,
+  the group-level predictors that vary within the factor's groups (those of
+  nested children and of crossed factors) and the same family; the factor's
+  own and its ancestors' group-level predictors and every other factor's
+  offsets are left out (group indicators absorb them).
+
+Both are reported where the partially pooled estimates are: a group's
+intercept row is its linear predictor at the reference values
+(:mod:`hierwork.plan.estimands`), its slope rows the slopes themselves. So a
+parent factor's no-pooling value and its partially pooled value describe the
+same typical child (child-level predictors at their reference values).
 
 Both are maximum-likelihood fits by iteratively reweighted least squares on a
 sparse design (McCullagh and Nelder 1989, "Generalized Linear Models", 2nd ed.,
@@ -41,35 +49,52 @@ def baselines(plan: ModelPlan) -> pd.DataFrame:
     Returns
     -------
     pandas.DataFrame
-        Columns ``factor, group, term, n, no_pooling, complete_pooling``; values
-        on the scale of the linear predictor with population predictors at 0.
+        Columns ``factor, group, term, no_pooling, complete_pooling``, on the
+        scale of the linear predictor: intercept rows at the reference values,
+        slope rows the slopes.
     """
+    ref = plan.estimands
     cp = _complete_pooling(plan)
     frames = []
     for f in plan.factors:
+        own = lineage(plan, f)
+        at_reference = float(ref.x @ cp["b"]) + sum(
+            float(ref.w[g.name] @ cp[g.name]) for g in plan.factors if g.predictors and g.name not in own)
         np_coef = _no_pooling(plan, f)
         for t, term in enumerate(f.varying):
             cp_value = np.full(f.n_groups, cp["b"][f.varying_cols[t]])
             if t == 0:
-                cp_value = cp_value + _group_shift(plan, f, cp)
+                cp_value = at_reference + group_shift(plan, f, cp)
             frames.append(pd.DataFrame({"factor": f.name, "group": list(f.levels), "term": term,
-                                        "n": f.sizes, "no_pooling": np_coef[:, t],
-                                        "complete_pooling": cp_value}))
+                                        "no_pooling": np_coef[:, t], "complete_pooling": cp_value}))
     return pd.concat(frames, ignore_index=True)
 
 
-def _group_shift(plan, f, cp) -> np.ndarray:
-    """Sum of group-level predictor contributions of ``f`` and its ancestors, per group of ``f``."""
-    shift = np.zeros(f.n_groups)
+def lineage(plan: ModelPlan, f) -> list:
+    """Names of ``f`` and its ancestors (the factors whose group-level values a group of ``f`` has)."""
+    names = [f.name]
+    while f.parent is not None:
+        f = plan.factor(f.parent)
+        names.append(f.name)
+    return names
+
+
+def group_shift(plan, f, coef) -> np.ndarray:
+    """Sum of group-level predictor contributions of ``f`` and its ancestors, per group of ``f``.
+
+    ``coef[F]`` are the group-level coefficients of factor ``F`` (arrays of any
+    leading shape, e.g. draws, with the predictors last).
+    """
+    shift = 0.0
     node, idx = f, np.arange(f.n_groups)
     while node is not None:
         if node.predictors:
-            shift += (node.W @ cp[node.name])[idx]
+            shift = shift + np.asarray(coef[node.name]) @ node.W[idx].T
         if node.parent is None:
             break
         idx = node.parent_index[idx]
         node = plan.factor(node.parent)
-    return shift
+    return shift + np.zeros(f.n_groups)
 
 
 def _complete_pooling(plan: ModelPlan) -> dict:
@@ -85,17 +110,22 @@ def _complete_pooling(plan: ModelPlan) -> dict:
 
 
 def _no_pooling(plan: ModelPlan, f) -> np.ndarray:
-    """Per-group coefficients of the varying terms of ``f``; NaN where not finite."""
+    """Per-group values of the varying terms of ``f`` (intercept at the reference values); NaN where not finite."""
     n, J, q = plan.n, f.n_groups, len(f.varying)
+    ref = plan.estimands
     rows = np.arange(n)
     blocks = [sp.csr_matrix((plan.X[:, col], (rows, f.index)), shape=(n, J)) for col in f.varying_cols]
     shared = [k for k in range(plan.X.shape[1]) if k not in f.varying_cols]
-    if shared:
-        blocks.append(sp.csr_matrix(plan.X[:, shared]))
+    within = [g for g in plan.factors if g.predictors and g.name not in lineage(plan, f)]
+    extra = [plan.X[:, shared]] + [g.W[g.index] for g in within]
+    if shared or within:
+        blocks.append(sp.csr_matrix(np.column_stack(extra)))
     design = sp.hstack(blocks, format="csr")
     keep = ~_at_boundary(plan, f)[f.index]
     coef = fit_glm(plan, design, keep)
     per_group = coef[: J * q].reshape(q, J).T.copy()
+    reference = np.concatenate([ref.x[shared]] + [ref.w[g.name] for g in within])
+    per_group[:, 0] += per_group[:, 1:] @ ref.x[list(f.varying_cols[1:])] + float(coef[J * q:] @ reference)
     per_group[_at_boundary(plan, f)] = np.nan
     unidentified = np.bincount(f.index[keep], minlength=J) < q
     per_group[unidentified] = np.nan

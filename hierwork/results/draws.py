@@ -113,6 +113,18 @@ def linear_predictor(draws: Draws, rows: Rows, sl: slice = slice(None)) -> np.nd
     return eta
 
 
+def within_budget(n_draws: int, cells_per_draw: int, budget: int, minimum: int = 100) -> np.ndarray:
+    """Flat positions of evenly spaced draws whose total work ``draws x cells_per_draw`` fits ``budget``.
+
+    Every draw when it fits; otherwise as many as fit, but at least ``minimum``
+    (or all there are).
+    """
+    wanted = max(minimum, budget // max(cells_per_draw, 1))
+    if wanted >= n_draws:
+        return np.arange(n_draws)
+    return np.unique(np.linspace(0, n_draws - 1, wanted).round().astype(np.int64))
+
+
 def chunks(n_draws: int, n_rows: int):
     """Row slices of about :data:`CHUNK_CELLS` draws x rows each."""
     step = max(1, CHUNK_CELLS // max(n_draws, 1))

@@ -1,10 +1,16 @@
-"""Posterior draws -> the tables users read: group estimates, population summary, pooling.
+"""Posterior draws -> the tables users read: group estimates, contrasts and the population summary.
 
-Every value is on the scale of the linear predictor with the population
-predictors at 0, in the data's own units. A group's intercept is the population
-intercept plus its group-level predictor terms plus its offset and, for nested
-factors, its ancestors' offsets and predictor terms; a varying slope likewise.
-Parameter names match the spec's ``priors`` keys (``farm.sd``, ``farm.nitrogen.sd``).
+A group's **intercept row** describes the group at the reference values of the
+predictors (``estimates.at``; :mod:`hierwork.results.outcome`), its **slope
+rows** its slopes. Both are given on the scale of the linear predictor
+(``no_pooling, complete_pooling, partial_mean, partial_sd, lower, upper``) and
+on the outcome's scale (``outcome_*``: a probability, a rate per
+``estimates.rate_per`` units of exposure, or the outcome's units; for a slope
+row the change of the expected outcome per unit of the term), with the sizes
+that say how much information a group carries, its pooling weight
+(:mod:`hierwork.results.pooling`) and where it stands
+(:mod:`hierwork.results.rankings`). Parameter names match the spec's ``priors``
+keys (``farm.sd``, ``farm.nitrogen.sd``).
 """
 from __future__ import annotations
 
@@ -13,27 +19,29 @@ import pandas as pd
 
 from hierwork.inference.convergence import diagnose
 from hierwork.plan.plan import FactorPlan, ModelPlan
+from hierwork.results.outcome import factor_values, family_params, population_outcome_draws
+from hierwork.results.pooling import pooling_weights
+from hierwork.results.rankings import CONTRAST_COLUMNS, bounds, contrast_rows, standing
+
+#: Columns of ``group_estimates.csv`` in order (``trials``, ``events``, ``exposure`` only where they apply).
+GROUP_COLUMNS = ("factor", "group", "term", "rows", "trials", "events", "exposure",
+                 "no_pooling", "complete_pooling", "partial_mean", "partial_sd", "lower", "upper",
+                 "outcome_mean", "outcome_lower", "outcome_upper", "no_pooling_outcome", "complete_pooling_outcome",
+                 "pooling_weight", "p_above_population", "p_beyond_target",
+                 "rank_median", "rank_lower", "rank_upper", "p_top", "p_bottom")
 
 
-def group_coefficient_draws(idata, plan: ModelPlan, f: FactorPlan) -> np.ndarray:
-    """Draws of each group's own coefficients, shape (chain, draw, J, q)."""
-    post = idata.posterior
-    b = post["b"].values  # (c, d, p)
-    out = np.stack([b[..., col] for col in f.varying_cols], axis=-1)[:, :, None, :]
-    out = np.broadcast_to(out, out.shape[:2] + (f.n_groups, len(f.varying))).copy()
-    node, idx = f, np.arange(f.n_groups)
-    while True:
-        effect = post[f"{node.name}__effect"].values  # (c, d, J_node, q_node)
-        for t, term in enumerate(f.varying):
-            if term in node.varying:
-                out[..., t] += effect[:, :, idx, node.varying.index(term)]
-        if node.predictors:
-            gamma = post[f"{node.name}__gamma"].values  # (c, d, r)
-            out[..., 0] += np.einsum("cdr,jr->cdj", gamma, node.W[idx])
-        if node.parent is None:
-            return out
-        idx = node.parent_index[idx]
-        node = plan.factor(node.parent)
+def group_sizes(plan: ModelPlan, f: FactorPlan) -> dict:
+    """How much data each group has: ``rows``, and ``trials``, ``events``, ``exposure`` where they apply."""
+    outcome = plan.outcome
+    sums = {"trials": outcome.trials, "events": outcome.y if plan.family.discrete else None,
+            "exposure": outcome.exposure}
+    out = {"rows": f.sizes}
+    for name, values in sums.items():
+        if values is not None:
+            total = np.bincount(f.index, values, f.n_groups)
+            out[name] = total.round().astype(np.int64) if np.all(values == np.round(values)) else total
+    return out
 
 
 def group_estimates(idata, plan: ModelPlan, baseline: pd.DataFrame, interval: float) -> pd.DataFrame:
@@ -46,34 +54,63 @@ def group_estimates(idata, plan: ModelPlan, baseline: pd.DataFrame, interval: fl
     baseline : pandas.DataFrame
         From :func:`hierwork.results.baselines.baselines`.
     interval : float
-        Probability of the central interval (``lower``, ``upper``).
+        Probability of the central intervals (``lower``/``upper``, ``outcome_lower``/``outcome_upper``, ranks).
 
     Returns
     -------
     pandas.DataFrame
-        ``factor, group, term, n, no_pooling, complete_pooling, partial_mean,
-        partial_sd, lower, upper, shrinkage``. ``shrinkage`` is how far the
-        estimate moved from no pooling towards complete pooling (0 = not at all,
-        1 = all the way), NaN when the two baselines coincide.
+        The columns of :data:`GROUP_COLUMNS` (see the module docstring and the README).
     """
-    lo_q, hi_q = (1 - interval) / 2, 1 - (1 - interval) / 2
+    lo, hi = bounds(interval)
+    weights = pooling_weights(idata, plan)
     frames = []
     for f in plan.factors:
-        draws = group_coefficient_draws(idata, plan, f)
-        flat = draws.reshape(-1, f.n_groups, len(f.varying))
+        values = factor_values(idata, plan, f)
+        link = values.link.reshape(-1, f.n_groups, len(f.varying))
+        outcome = values.outcome.reshape(-1, f.n_groups, len(f.varying))
+        population = values.population_link.reshape(-1, len(f.varying))
         for t, term in enumerate(f.varying):
             frames.append(pd.DataFrame({
-                "factor": f.name, "group": list(f.levels), "term": term,
-                "partial_mean": flat[:, :, t].mean(axis=0), "partial_sd": flat[:, :, t].std(axis=0, ddof=1),
-                "lower": np.quantile(flat[:, :, t], lo_q, axis=0),
-                "upper": np.quantile(flat[:, :, t], hi_q, axis=0)}))
+                "factor": f.name, "group": list(f.levels), "term": term, **group_sizes(plan, f),
+                "partial_mean": link[:, :, t].mean(axis=0), "partial_sd": link[:, :, t].std(axis=0, ddof=1),
+                "lower": np.quantile(link[:, :, t], lo, axis=0), "upper": np.quantile(link[:, :, t], hi, axis=0),
+                "outcome_mean": outcome[:, :, t].mean(axis=0),
+                "outcome_lower": np.quantile(outcome[:, :, t], lo, axis=0),
+                "outcome_upper": np.quantile(outcome[:, :, t], hi, axis=0),
+                "pooling_weight": weights[f.name][:, t],
+                **standing(link[:, :, t], outcome[:, :, t], population[:, t], plan.estimands, t == 0, interval)}))
     partial = pd.concat(frames, ignore_index=True)
     table = baseline.merge(partial, on=["factor", "group", "term"], how="left", validate="one_to_one")
-    gap = table["no_pooling"] - table["complete_pooling"]
-    with np.errstate(divide="ignore", invalid="ignore"):
-        table["shrinkage"] = np.where(np.abs(gap) > 1e-12, (table["no_pooling"] - table["partial_mean"]) / gap,
-                                      np.nan)
-    return table
+    table["no_pooling_outcome"] = _baseline_outcome(idata, plan, table, "no_pooling")
+    table["complete_pooling_outcome"] = _baseline_outcome(idata, plan, table, "complete_pooling")
+    return table[[c for c in GROUP_COLUMNS if c in table.columns]]
+
+
+def _baseline_outcome(idata, plan: ModelPlan, table: pd.DataFrame, column: str) -> np.ndarray:
+    """A baseline column on the outcome's scale (family parameters at their posterior means).
+
+    Intercept rows: the expected outcome; slope rows: its change per unit of the
+    term from the group's own intercept row of the same baseline.
+    """
+    ref, family = plan.estimands, plan.family
+    params = {k: float(v.mean()) for k, v in family_params(idata, plan).items()}
+    level = table[table["term"] == "intercept"].set_index(["factor", "group"])[column]
+    at = level.reindex(pd.MultiIndex.from_frame(table[["factor", "group"]])).to_numpy(dtype=float)
+    value = table[column].to_numpy(dtype=float)
+    slope = (table["term"] != "intercept").to_numpy()
+    start = ref.outcome(family, at, params)
+    return np.where(slope, ref.outcome(family, at + np.where(slope, value, 0.0), params) - start, start)
+
+
+def contrasts(idata, plan: ModelPlan, interval: float) -> pd.DataFrame:
+    """``contrasts.csv``: every requested contrast (``estimates.contrasts``), one row per varying term."""
+    rows, cache = [], {}
+    for name, a, b in plan.estimands.contrasts:
+        f = plan.factor(name)
+        if name not in cache:
+            cache[name] = factor_values(idata, plan, f).outcome.reshape(-1, f.n_groups, len(f.varying))
+        rows += contrast_rows(name, a, b, list(f.levels), f.varying, cache[name], interval)
+    return pd.DataFrame(rows, columns=list(CONTRAST_COLUMNS))
 
 
 def parameter_draws(idata, plan: ModelPlan) -> dict:
@@ -99,33 +136,17 @@ def parameter_draws(idata, plan: ModelPlan) -> dict:
 
 
 def population_summary(idata, plan: ModelPlan, interval: float) -> pd.DataFrame:
-    """The run folder's ``summary.csv``: mean, sd, central interval, ESS and R-hat per parameter."""
-    lo_q, hi_q = (1 - interval) / 2, 1 - (1 - interval) / 2
-    named = parameter_draws(idata, plan)
+    """The run folder's ``summary.csv``: mean, sd, central interval, ESS and R-hat per parameter.
+
+    After the model's parameters come the population on the outcome's scale:
+    ``outcome`` (a typical group at the reference values) and
+    ``outcome_change.<term>`` (:func:`hierwork.results.outcome.population_outcome_draws`).
+    """
+    lo_q, hi_q = bounds(interval)
+    named = {**parameter_draws(idata, plan), **population_outcome_draws(idata, plan)}
     stacked = np.stack([np.asarray(d, dtype=float) for d in named.values()], axis=-1)  # (chain, draw, K)
     r_hat, ess_bulk, ess_tail = diagnose(stacked)
     flat = stacked.reshape(-1, stacked.shape[-1])
     return pd.DataFrame({"parameter": list(named), "mean": flat.mean(axis=0), "sd": flat.std(axis=0, ddof=1),
                          "lower": np.quantile(flat, lo_q, axis=0), "upper": np.quantile(flat, hi_q, axis=0),
                          "ess_bulk": ess_bulk, "ess_tail": ess_tail, "r_hat": r_hat})
-
-
-def pooling_factors(idata, plan: ModelPlan) -> pd.DataFrame:
-    """Pooling factor per factor and varying term (Gelman and Pardoe 2006).
-
-    ``lambda = 1 - V_j(E[u_j]) / E[V_j(u_j)]``, where ``V_j`` is the variance
-    across groups and ``E`` the posterior mean (Gelman, A. and Pardoe, I. 2006,
-    "Bayesian measures of explained variance and pooling in multilevel
-    (hierarchical) models", Technometrics 48, 241-251, eq. 8). Near 0: groups
-    keep their own estimates; near 1: they are pooled to the population value.
-    """
-    rows = []
-    for f in plan.factors:
-        effect = idata.posterior[f"{f.name}__effect"].values  # (c, d, J, q)
-        flat = effect.reshape(-1, f.n_groups, len(f.varying))
-        for t, term in enumerate(f.varying):
-            e_var = float(np.mean(np.var(flat[:, :, t], axis=1, ddof=1)))
-            var_e = float(np.var(flat[:, :, t].mean(axis=0), ddof=1))
-            rows.append({"factor": f.name, "term": term, "n_groups": f.n_groups,
-                         "pooling_factor": 1 - var_e / e_var if e_var > 0 else np.nan})
-    return pd.DataFrame(rows)

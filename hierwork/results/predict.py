@@ -25,13 +25,15 @@ from hierwork.data.rows import RowRef, blank, numeric
 from hierwork.errors import DataError, RunFolderError
 from hierwork.inference import seeds
 from hierwork.plan.design import Design
+from hierwork.plan.estimands import Estimands
 from hierwork.plan.families import get_family
 from hierwork.plan.families.base import OutcomeRows
 from hierwork.results.draws import Rows, chunks, draws_of, linear_predictor
 from hierwork.runfolder import Run
 
 #: The columns ``predict`` adds to the input rows.
-COLUMNS = ("pred_mean", "pred_sd", "pred_lower", "pred_upper", "link_mean", "link_lower", "link_upper")
+COLUMNS = ("pred_mean", "pred_sd", "pred_lower", "pred_upper", "outcome_mean", "outcome_lower", "outcome_upper",
+           "link_mean", "link_lower", "link_upper")
 
 
 def predict(run, new_data, seed: int | None = None, interval: float | None = None) -> pd.DataFrame:
@@ -54,7 +56,11 @@ def predict(run, new_data, seed: int | None = None, interval: float | None = Non
     -------
     pandas.DataFrame
         The input columns, then ``pred_mean, pred_sd, pred_lower, pred_upper``
-        (the outcome), ``link_mean, link_lower, link_upper`` (the linear
+        (the outcome of the row, drawn from the family: counts for the row's
+        trials or exposure), ``outcome_mean, outcome_lower, outcome_upper`` (the
+        expected outcome on the outcome's scale, as in ``group_estimates.csv``:
+        a probability, a rate per ``estimates.rate_per`` units of exposure, or
+        the outcome's units), ``link_mean, link_lower, link_upper`` (the linear
         predictor, without exposure offset), and ``group_status`` (``known`` or
         ``new``; ``farm=known; plot=new`` with several factors).
 
@@ -117,7 +123,8 @@ def predict(run, new_data, seed: int | None = None, interval: float | None = Non
                for key in ("trials", "exposure", "known_sd")}
     rows = Rows(X, groups, OutcomeRows(None, **columns))
     result = frame.copy()
-    for key, values in _summaries(draws, rows, family, rng, interval).items():
+    estimands = Estimands.from_dict(plan["estimands"]) if plan.get("estimands") else Estimands(np.ones(1))
+    for key, values in _summaries(draws, rows, family, estimands, rng, interval).items():
         result[key] = values
     names = list(status)
     result["group_status"] = (status[names[0]] if len(names) == 1 else
@@ -131,7 +138,7 @@ def _parameters(family, posterior) -> list:
     return [name for name in dict.fromkeys(candidates) if name in posterior]
 
 
-def _summaries(draws, rows, family, rng, interval) -> dict:
+def _summaries(draws, rows, family, estimands, rng, interval) -> dict:
     lo_q, hi_q = (1 - interval) / 2, 1 - (1 - interval) / 2
     out = {k: np.empty(rows.n) for k in COLUMNS}
     params = draws.family_params()
@@ -140,6 +147,9 @@ def _summaries(draws, rows, family, rng, interval) -> dict:
         rep = family.simulate(rng, eta, rows.outcome.rows(sl), params)
         out["pred_mean"][sl], out["pred_sd"][sl] = rep.mean(axis=0), rep.std(axis=0, ddof=1)
         out["pred_lower"][sl], out["pred_upper"][sl] = np.quantile(rep, [lo_q, hi_q], axis=0)
+        expected = estimands.outcome(family, eta, params)
+        out["outcome_mean"][sl] = expected.mean(axis=0)
+        out["outcome_lower"][sl], out["outcome_upper"][sl] = np.quantile(expected, [lo_q, hi_q], axis=0)
         out["link_mean"][sl] = eta.mean(axis=0)
         out["link_lower"][sl], out["link_upper"][sl] = np.quantile(eta, [lo_q, hi_q], axis=0)
     return out

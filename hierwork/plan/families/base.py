@@ -58,6 +58,9 @@ class Family:
         ``identity``, ``logit`` or ``log``.
     link_scale : str
         Name of the linear predictor's scale for readers (``log-odds``, ...).
+    outcome_scale : str
+        What :meth:`mean` is, for readers: ``probability``, ``rate`` (per unit
+        of exposure) or ``outcome units``.
     columns : tuple of str
         Outcome keys (``trials``, ``exposure``, ``known_sd``) this family accepts.
     required : tuple of str
@@ -72,6 +75,7 @@ class Family:
     name: ClassVar[str] = ""
     link: ClassVar[str] = "identity"
     link_scale: ClassVar[str] = "outcome units"
+    outcome_scale: ClassVar[str] = "outcome units"
     columns: ClassVar[tuple] = ()
     required: ClassVar[tuple] = ()
     discrete: ClassVar[bool] = False
@@ -181,6 +185,17 @@ class Family:
     def mean(self, eta, params: dict):
         """Expected outcome per unit (per trial, per unit of exposure) on the outcome's scale."""
         return self.inverse_link(eta)
+
+    def information(self, eta, rows: OutcomeRows, params: dict):
+        """Fisher information about ``eta`` carried by each row, ``E[-d^2 log p(y) / d eta^2]``.
+
+        Its inverse summed over a group's rows is the group's sampling variance
+        on the link scale (the pooling weight, :mod:`hierwork.results.pooling`).
+        The result broadcasts against ``eta`` (it may be smaller when it does not
+        depend on ``eta``). Default: the IRLS weights at ``eta`` (offset added),
+        which are the information of a canonical-link family without dispersion.
+        """
+        return self.glm_working(rows, eta + self.offset(rows), {})[1]
 
     def log_density(self, y, eta, rows: OutcomeRows, params: dict) -> np.ndarray:
         """Log density (or mass) of ``y`` given ``eta``, written from its formula."""

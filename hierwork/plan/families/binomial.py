@@ -11,6 +11,7 @@ class Binomial(Family):
     name = "binomial"
     link = "logit"
     link_scale = "log-odds"
+    outcome_scale = "probability"
     columns = ("trials",)
     required = ("trials",)
     discrete = True

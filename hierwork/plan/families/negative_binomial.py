@@ -28,6 +28,10 @@ class NegativeBinomial(Poisson):
         alpha = state.setdefault("dispersion", _START_DISPERSION)
         return mu / (1 + mu / alpha)
 
+    def information(self, eta, rows, params):
+        """``mu / (1 + mu / dispersion)``: the Poisson information, reduced by the gamma mixing."""
+        return self.glm_weight(self.expected(eta, rows), {"dispersion": params["dispersion"]})
+
     def glm_update(self, rows, eta, state):
         """Maximum-likelihood dispersion given the means (1-D search on its log)."""
         y, mu = rows.y, np.exp(eta)

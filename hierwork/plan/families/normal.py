@@ -39,6 +39,10 @@ class Normal(Family):
         w = np.ones(rows.n) if rows.known_sd is None else 1.0 / rows.known_sd ** 2
         return rows.y, w
 
+    def information(self, eta, rows, params):
+        """``1 / sigma^2`` per row (the known SDs, else ``residual_sd``), whatever ``eta``."""
+        return 1.0 / sigma_of(rows, params) ** 2
+
     def likelihood(self, eta, y, rows, params):
         import pymc as pm
 

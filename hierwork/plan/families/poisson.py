@@ -11,6 +11,7 @@ class Poisson(Family):
     name = "poisson"
     link = "log"
     link_scale = "log rate"
+    outcome_scale = "rate"
     columns = ("exposure",)
     discrete = True
     summary = "counts (log link); exposure for counts per unit of time, area, ..."

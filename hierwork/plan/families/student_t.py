@@ -46,6 +46,12 @@ class StudentT(Family):
         s2 = max(float(np.sum(r * r) / rows.n), 1e-300)
         return rows.y, (BASELINE_NU + 1) / (BASELINE_NU + r * r / s2)
 
+    def information(self, eta, rows, params):
+        """``(nu + 1) / ((nu + 3) sigma^2)`` per row: the location information of a Student-t
+        (Lange, Little and Taylor 1989, JASA 84, 881-896, section 3), whatever ``eta``."""
+        nu = params["nu"]
+        return (nu + 1) / ((nu + 3) * params["residual_sd"] ** 2)
+
     def likelihood(self, eta, y, rows, params):
         import pymc as pm
 

@@ -1,227 +1,25 @@
-"""Figures of the report, drawn with matplotlib and embedded as data URIs.
+"""Figures of the sampler and of the fit to the data: traces and ranks, energy, divergences, predictive check.
 
-Each function returns a :class:`Plot` (an ``image/svg+xml`` data URI, a text
-alternative and a caption) or ``None`` when the run lacks what it needs.
-Figures only draw arrays read from the run folder; the one summary a figure
-shows beyond raw draws (histogram counts, quantile bands of replicated
-counts) is part of drawing it.
-
-Colours are the Okabe and Ito (2008) palette, "Color Universal Design",
-chosen to stay distinguishable under the common colour-vision deficiencies;
-marker shape and line style carry the same meaning as colour so that nothing
-depends on colour alone.
+Each function returns a :class:`~hierwork.report.plotting.Plot` or ``None``
+when the run lacks what it needs. Figures only draw arrays read from the run
+folder; the one summary a figure shows beyond raw draws (histogram counts,
+quantile bands of replicated counts) is part of drawing it.
 """
 from __future__ import annotations
 
-import base64
-import functools
-import io
-from dataclasses import dataclass
-
-import matplotlib
 import numpy as np
-from matplotlib.figure import Figure
 
 from hierwork.formatting import number as fmt
+from hierwork.report.plotting import GREY, PALETTE, Plot, clip_text, finish, new_figure, styled
 
-__all__ = ["Plot", "PALETTE", "MAX_FOREST_GROUPS", "MAX_SCATTER_GROUPS", "pooling_plot",
-           "trace_rank_plot", "energy_plot", "divergence_plot", "ppc_plot", "hyperparameters"]
+__all__ = ["trace_rank_plot", "energy_plot", "divergence_plot", "ppc_plot", "hyperparameters",
+           "MAX_TRACE_PARAMETERS"]
 
-#: Okabe and Ito (2008) colours.
-PALETTE = {"black": "#000000", "orange": "#E69F00", "sky": "#56B4E9", "green": "#009E73",
-           "yellow": "#F0E442", "blue": "#0072B2", "vermillion": "#D55E00",
-           "purple": "#CC79A7"}
 _CHAIN_COLOURS = [PALETTE[k] for k in ("blue", "orange", "green", "purple", "sky",
                                        "vermillion", "black")]
-_GREY = "#8a8a8a"
-_STYLE = {
-    "font.size": 8, "axes.titlesize": 9, "axes.labelsize": 8, "legend.fontsize": 7,
-    "xtick.labelsize": 7, "ytick.labelsize": 7, "axes.spines.top": False,
-    "axes.spines.right": False, "axes.edgecolor": "#444444", "axes.grid": True,
-    "grid.color": "#e4e4e4", "grid.linewidth": 0.6, "axes.axisbelow": True,
-    "svg.fonttype": "none", "svg.hashsalt": "hierwork", "font.family": "sans-serif",
-}
-#: Groups drawn one per row in a pooling plot; above this a scatter is drawn.
-MAX_FOREST_GROUPS = 40
-#: Groups drawn in the scatter form; above this an even subsample by size is drawn.
-MAX_SCATTER_GROUPS = 3000
 #: Hyperparameters drawn in the trace and rank figure.
 MAX_TRACE_PARAMETERS = 10
 
-
-@dataclass(frozen=True)
-class Plot:
-    """An embedded figure: ``uri`` (data URI), ``alt`` text and ``caption``.
-
-    Shown inline by Jupyter (``_repr_svg_``).
-    """
-
-    uri: str
-    alt: str
-    caption: str
-
-    @property
-    def svg(self) -> str:
-        """The SVG document."""
-        return base64.b64decode(self.uri.split(",", 1)[1]).decode("utf-8")
-
-    def _repr_svg_(self) -> str:
-        return self.svg
-
-
-def _text(value, width: int = 30) -> str:
-    """A user-supplied label made safe for matplotlib: ``$`` would start math mode."""
-    text = str(value)
-    if len(text) > width:
-        text = text[: width - 1] + "\u2026"
-    return text.replace("$", r"\$")
-
-
-def _styled(draw):
-    """Run a figure function under the report's matplotlib style (no global change)."""
-    @functools.wraps(draw)
-    def wrapper(*args, **kwargs):
-        with matplotlib.rc_context(_STYLE):
-            return draw(*args, **kwargs)
-    return wrapper
-
-
-def _figure(width: float, height: float) -> Figure:
-    return Figure(figsize=(width, height), layout="constrained")
-
-
-def _encode(fig: Figure) -> str:
-    buffer = io.BytesIO()
-    fig.savefig(buffer, format="svg", metadata={"Date": None, "Creator": None})
-    return "data:image/svg+xml;base64," + base64.b64encode(buffer.getvalue()).decode("ascii")
-
-
-def _stamp(fig: Figure, stamp: str | None) -> None:
-    """Print ``stamp`` (e.g. 'GATE FAILED - NOT FOR USE') across the figure."""
-    if stamp:
-        fig.text(0.5, 0.5, stamp, ha="center", va="center",
-                 rotation=20, fontsize=22, color=PALETTE["vermillion"], alpha=0.28,
-                 weight="bold")
-
-
-def scale_name(family: str) -> str:
-    """The scale estimates are reported on: the linear predictor of ``family``."""
-    from hierwork.plan.families import REGISTRY, get_family
-
-    return get_family(family).link_scale if family in REGISTRY else "outcome units"
-
-
-# --- pooling ----------------------------------------------------------------
-
-@_styled
-def pooling_plot(rows, factor: str, term: str, family: str, interval: float,
-                 stamp: str | None = None) -> Plot:
-    """No pooling, partial pooling and complete pooling for one factor and term.
-
-    Parameters
-    ----------
-    rows : pandas.DataFrame
-        Rows of ``group_estimates.csv`` for this factor and term.
-    factor, term : str
-        Names shown in titles and text.
-    family : str
-        Outcome family, naming the scale on the axis.
-    interval : float
-        Level of the ``lower``/``upper`` interval.
-    stamp : str, optional
-        Text printed across the figure (for runs whose estimates are not for use).
-    """
-    rows = rows.sort_values(["n", "partial_mean"], kind="stable").reset_index(drop=True)
-    what = "intercept" if term == "intercept" else f"slope of {term}"
-    axis = f"group {what} ({scale_name(family)})"
-    complete = rows["complete_pooling"].dropna().unique()
-    if len(rows) <= MAX_FOREST_GROUPS:
-        fig, note = _forest(rows, axis, interval, complete), ""
-    else:
-        fig, note = _scatter(rows, axis, complete)
-    fig.suptitle(_text(f"{factor}: {what}", 60), x=0.02, ha="left", weight="bold")
-    _stamp(fig, stamp)
-    smallest, largest = rows.iloc[0], rows.iloc[-1]
-
-    def moved(r):
-        return (f"{r['group']} (n={fmt(r['n'])}) moved from {fmt(r['no_pooling'])} on its own "
-                f"data to {fmt(r['partial_mean'])} with partial pooling")
-
-    flat = (f"the complete-pooling value is {fmt(complete[0])}" if len(complete) == 1
-            else "complete-pooling values differ by group")
-    alt = (f"Pooling plot for {factor}, {what}, {len(rows)} groups: {moved(smallest)}; "
-           f"{moved(largest)}; {flat}.")
-    caption = (f"{factor}, {what}: hollow circles are each group's estimate from its own "
-               f"data alone (no pooling; circle area grows with group size n), filled "
-               f"points and bars the partially pooled posterior mean and {interval:.0%} "
-               f"interval, the dashed line complete pooling (one value for all groups). "
-               f"Small groups are pulled further towards the population value. {note}")
-    return Plot(_encode(fig), alt, caption.strip())
-
-
-def _sizes(n) -> np.ndarray:
-    n = np.asarray(n, dtype=float)
-    return 12 + 140 * np.sqrt(n / np.nanmax(n))
-
-
-def _forest(rows, axis: str, interval: float, complete) -> Figure:
-    fig = _figure(6.6, 1.0 + 0.24 * len(rows))
-    ax = fig.add_subplot()
-    y = np.arange(len(rows))[::-1]
-    if len(complete) == 1:
-        ax.axvline(complete[0], color=PALETTE["black"], linestyle="--", linewidth=1,
-                   label="complete pooling")
-    else:
-        ax.scatter(rows["complete_pooling"], y, marker="|", s=80, color=PALETTE["black"],
-                   label="complete pooling")
-    ax.hlines(y, rows["lower"], rows["upper"], color=PALETTE["blue"], linewidth=2,
-              label=f"partial pooling, {interval:.0%} interval")
-    own = rows["no_pooling"].to_numpy(dtype=float)
-    mean = rows["partial_mean"].to_numpy(dtype=float)
-    for yi, start, end in zip(y, own, mean):
-        if np.isfinite(start):
-            ax.annotate("", xy=(end, yi), xytext=(start, yi),
-                        arrowprops={"arrowstyle": "-|>", "color": PALETTE["orange"],
-                                    "lw": 0.9, "shrinkA": 3, "shrinkB": 3})
-    ax.scatter(own, y, s=_sizes(rows["n"]), facecolors="white", edgecolors=PALETTE["orange"],
-               linewidths=1.4, zorder=3, label="own data only (no pooling)")
-    ax.scatter(mean, y, s=22, color=PALETTE["blue"], zorder=4, label="partial pooling mean")
-    ax.set_yticks(y, [f"{_text(g, 24)}  n={fmt(n)}" for g, n in zip(rows["group"], rows["n"])])
-    ax.set_ylim(-0.7, len(rows) - 0.3)
-    ax.set_xlabel(_text(axis, 80))
-    ax.grid(axis="y", visible=False)
-    fig.legend(loc="outside lower center", ncols=2, frameon=False)
-    return fig
-
-
-def _scatter(rows, axis: str, complete) -> tuple[Figure, str]:
-    note = ""
-    if len(rows) > MAX_SCATTER_GROUPS:
-        pick = np.linspace(0, len(rows) - 1, MAX_SCATTER_GROUPS).round().astype(int)
-        note = (f"Drawn: {MAX_SCATTER_GROUPS} of {len(rows)} groups, evenly spaced by group "
-                f"size; the table and group_estimates.csv list all.")
-        rows = rows.iloc[pick]
-    fig = _figure(6.0, 4.4)
-    ax = fig.add_subplot()
-    own = rows["no_pooling"].to_numpy(dtype=float)
-    finite = np.isfinite(own)
-    low, high = np.nanmin(np.r_[own, rows["partial_mean"]]), np.nanmax(np.r_[own, rows["partial_mean"]])
-    ax.plot([low, high], [low, high], color=_GREY, linewidth=1, label="no pooling (y = x)")
-    if len(complete) == 1:
-        ax.axhline(complete[0], color=PALETTE["black"], linestyle="--", linewidth=1,
-                   label="complete pooling")
-    ax.scatter(own[finite], rows["partial_mean"].to_numpy(dtype=float)[finite],
-               s=_sizes(rows["n"])[finite] / 3, color=PALETTE["blue"], alpha=0.6,
-               edgecolors="none", rasterized=True, label="group (area grows with n)")
-    ax.set_xlabel(_text("own data only: " + axis, 80))
-    ax.set_ylabel(_text("partial pooling mean", 80))
-    ax.legend(loc="upper left", frameon=False)
-    note = (f"With {len(rows)} groups, each point is one group: the further below the grey "
-            f"y = x line towards the dashed line, the more it was pooled. {note}")
-    return fig, note
-
-
-# --- sampler diagnostics -------------------------------------------------------
 
 def hyperparameters(posterior) -> list[tuple[str, str, dict]]:
     """The population and variance parameters as ``(label, variable, selection)``.
@@ -243,7 +41,7 @@ def hyperparameters(posterior) -> list[tuple[str, str, dict]]:
     return chosen
 
 
-@_styled
+@styled
 def trace_rank_plot(idata, stamp: str | None = None) -> Plot | None:
     """Traces and rank histograms per chain of the hyperparameters.
 
@@ -258,7 +56,7 @@ def trace_rank_plot(idata, stamp: str | None = None) -> Plot | None:
     if not params:
         return None
     shown = params[:MAX_TRACE_PARAMETERS]
-    fig = _figure(7.0, 0.3 + 1.05 * len(shown))
+    fig = new_figure(7.0, 0.3 + 1.05 * len(shown))
     axes = fig.subplots(len(shown), 2, squeeze=False, width_ratios=[2.2, 1], sharex="col")
     n_chains, n_draws = post.sizes["chain"], post.sizes["draw"]
     bins = np.linspace(0, n_chains * n_draws, min(20, n_draws // 5 or 1) + 1)
@@ -270,15 +68,14 @@ def trace_rank_plot(idata, stamp: str | None = None) -> Plot | None:
             trace_ax.plot(values[c], color=colour, linewidth=0.5, alpha=0.8, rasterized=True)
             rank_ax.stairs(np.histogram(ranks[c], bins)[0], bins, color=colour, linewidth=1.1,
                            baseline=None)
-        rank_ax.axhline(n_draws / (len(bins) - 1), color=_GREY, linestyle=":", linewidth=1)
+        rank_ax.axhline(n_draws / (len(bins) - 1), color=GREY, linestyle=":", linewidth=1)
         rank_ax.set_ylim(bottom=0)
-        trace_ax.set_ylabel(_text(label, 26), rotation=0, ha="right", va="center")
+        trace_ax.set_ylabel(clip_text(label, 26), rotation=0, ha="right", va="center")
         rank_ax.set_yticks([])
     axes[0, 0].set_title("trace (one colour per chain)", loc="left")
     axes[0, 1].set_title("rank histogram per chain", loc="left")
     axes[-1, 0].set_xlabel("draw")
     axes[-1, 1].set_xlabel("rank among all draws")
-    _stamp(fig, stamp)
     note = (f" Showing {len(shown)} of {len(params)} parameters; the rest are in summary.csv."
             if len(params) > len(shown) else "")
     alt = (f"Trace and rank plots of {len(shown)} population and variance parameters over "
@@ -287,10 +84,10 @@ def trace_rank_plot(idata, stamp: str | None = None) -> Plot | None:
                "one level. Right: ranks of the draws among all chains, one histogram per "
                "chain, the dotted line the count expected if all chains agree; roughly "
                "flat, overlapping histograms mean they do (Vehtari et al. 2021)." + note)
-    return Plot(_encode(fig), alt, caption)
+    return finish(fig, alt, caption, stamp)
 
 
-@_styled
+@styled
 def energy_plot(idata, bfmi: float | None, stamp: str | None = None) -> Plot | None:
     """Marginal energy against energy transitions (Betancourt 2016, arXiv:1604.00695).
 
@@ -304,7 +101,7 @@ def energy_plot(idata, bfmi: float | None, stamp: str | None = None) -> Plot | N
     marginal = (energy - energy.mean(axis=1, keepdims=True)).ravel()
     transition = np.diff(energy, axis=1).ravel()
     bins = np.histogram_bin_edges(np.r_[marginal, transition], bins=40)
-    fig = _figure(5.6, 2.6)
+    fig = new_figure(5.6, 2.6)
     ax = fig.add_subplot()
     ax.hist(marginal, bins, density=True, color=PALETTE["sky"], alpha=0.6,
             label="marginal energy (centred)")
@@ -313,17 +110,16 @@ def energy_plot(idata, bfmi: float | None, stamp: str | None = None) -> Plot | N
     ax.set_xlabel("energy")
     ax.set_yticks([])
     ax.legend(frameon=False, loc="upper right")
-    _stamp(fig, stamp)
     value = "" if bfmi is None else f" The lowest E-BFMI over chains is {fmt(bfmi, 3)}."
     alt = ("Histograms of the centred marginal energy and of the energy transitions between "
            "successive draws." + value)
     caption = ("Energy: the outline (transitions) should be about as wide as the shaded "
                "histogram (marginal energy). A much narrower outline means low E-BFMI and "
                "poor exploration of the tails (Betancourt 2016)." + value)
-    return Plot(_encode(fig), alt, caption)
+    return finish(fig, alt, caption, stamp)
 
 
-@_styled
+@styled
 def divergence_plot(idata, estimates, stamp: str | None = None) -> Plot | None:
     """Divergent transitions located in parameter space, per grouping factor.
 
@@ -341,15 +137,15 @@ def divergence_plot(idata, estimates, stamp: str | None = None) -> Plot | None:
     b = post["b"]
     first_term = "intercept" if "intercept" in b["term"].values else b["term"].values[0]
     x_b = b.sel(term=first_term).values.ravel()
-    fig = _figure(6.6, 0.4 + 2.4 * len(factors))
+    fig = new_figure(6.6, 0.4 + 2.4 * len(factors))
     axes = fig.subplots(len(factors), 2, squeeze=False)
     for factor, (ax_b, ax_e) in zip(factors, axes):
         sd = post[f"{factor}__sd"]
         sd_term = sd[f"{factor}__term"].values[0]
         y = np.log(sd.sel({f"{factor}__term": sd_term}).values.ravel())
-        y_label = _text(f"log {factor}__sd[{sd_term}]", 40)
+        y_label = clip_text(f"log {factor}__sd[{sd_term}]", 40)
         _scatter_divergent(ax_b, x_b, y, divergent)
-        ax_b.set_xlabel(_text(f"b[{first_term}]", 40))
+        ax_b.set_xlabel(clip_text(f"b[{first_term}]", 40))
         ax_b.set_ylabel(y_label)
         effect = post.get(f"{factor}__effect")
         group = _smallest_group(estimates, factor, effect)
@@ -358,9 +154,8 @@ def divergence_plot(idata, estimates, stamp: str | None = None) -> Plot | None:
             continue
         x_e = effect.sel({factor: group, f"{factor}__term": sd_term}).values.ravel()
         _scatter_divergent(ax_e, x_e, y, divergent)
-        ax_e.set_xlabel(_text(f"{factor}__effect of smallest group {group}", 50))
+        ax_e.set_xlabel(clip_text(f"{factor}__effect of smallest group {group}", 50))
     axes[0, 0].legend(frameon=False, loc="best")
-    _stamp(fig, stamp)
     count = int(divergent.sum())
     found = (f"{count} of {divergent.size} draws ended in a divergent transition (crosses)."
              if count else f"None of the {divergent.size} draws diverged.")
@@ -370,11 +165,11 @@ def divergence_plot(idata, estimates, stamp: str | None = None) -> Plot | None:
     caption = (found + " Divergences that cluster at small group SDs (bottom of each panel, "
                "the neck of a funnel) suggest a non-centred parameterisation or a higher "
                "target_accept.")
-    return Plot(_encode(fig), alt, caption)
+    return finish(fig, alt, caption, stamp)
 
 
 def _scatter_divergent(ax, x, y, divergent) -> None:
-    ax.scatter(x[~divergent], y[~divergent], s=3, color=_GREY, alpha=0.35, edgecolors="none",
+    ax.scatter(x[~divergent], y[~divergent], s=3, color=GREY, alpha=0.35, edgecolors="none",
                rasterized=True, label="draw")
     if divergent.any():
         ax.scatter(x[divergent], y[divergent], s=22, marker="x", color=PALETTE["vermillion"],
@@ -387,12 +182,12 @@ def _smallest_group(estimates, factor, effect):
     rows = estimates[(estimates["factor"] == factor)]
     labels = set(map(str, effect[factor].values))
     rows = rows[rows["group"].isin(labels)]
-    return None if rows.empty else rows.sort_values("n", kind="stable")["group"].iloc[0]
+    return None if rows.empty else rows.sort_values("rows", kind="stable")["group"].iloc[0]
 
 
 # --- posterior predictive --------------------------------------------------------
 
-@_styled
+@styled
 def ppc_plot(idata, stamp: str | None = None, max_draws: int = 40) -> Plot | None:
     """Observed outcome against outcomes replicated from the posterior.
 
@@ -414,7 +209,7 @@ def ppc_plot(idata, stamp: str | None = None, max_draws: int = 40) -> Plot | Non
     replicated = replicated.reshape(replicated.shape[0], -1)
     pick = np.linspace(0, replicated.shape[0] - 1, min(max_draws, replicated.shape[0]))
     replicated = replicated[pick.round().astype(int)]
-    fig = _figure(5.6, 2.8)
+    fig = new_figure(5.6, 2.8)
     ax = fig.add_subplot()
     values = np.unique(observed)
     if np.all(observed == np.round(observed)) and len(values) <= 30:
@@ -438,11 +233,10 @@ def ppc_plot(idata, stamp: str | None = None, max_draws: int = 40) -> Plot | Non
         ax.plot([], [], color=PALETTE["sky"], label=f"{len(replicated)} replicated data sets")
         ax.set_yticks([])
         kind = "distribution"
-    ax.set_xlabel(_text(name, 60))
+    ax.set_xlabel(clip_text(name, 60))
     ax.legend(frameon=False, loc="upper right")
-    _stamp(fig, stamp)
     alt = (f"Posterior predictive check of {name}: the {kind} of the {observed.size} observed "
            f"values drawn over {len(replicated)} data sets replicated from the posterior.")
     caption = ("Posterior predictive check: if the model describes the data, the observed "
                "values (black or shaded) look like one more replicated data set.")
-    return Plot(_encode(fig), alt, caption)
+    return finish(fig, alt, caption, stamp)

@@ -1,0 +1,126 @@
+"""The report's "What stands out" section: groups away from the population or beyond the target, and contrasts.
+
+Right after the verdict, in words and in a table. A group stands out when its
+central interval on the outcome's scale lies wholly above or below the
+population value (a typical group at the same reference values), or when the
+probability that it is beyond ``estimates.target`` exceeds
+:data:`TARGET_PROBABILITY`. The requested contrasts (``contrasts.csv``) follow.
+Every number comes from the run folder's files.
+"""
+from __future__ import annotations
+
+import pandas as pd
+
+from hierwork.formatting import probability
+from hierwork.report.markup import Raw, el
+from hierwork.report.page import banner, data_table
+from hierwork.report.view import View
+
+__all__ = ["standout_section", "standing_out", "factor_sentences", "TARGET_PROBABILITY"]
+
+#: ``p_beyond_target`` above which a group is named as beyond the target (the issue's rule).
+TARGET_PROBABILITY = 0.9
+#: Groups named in a sentence; the table lists up to MAX_ROWS.
+NAMED, MAX_ROWS = 6, 50
+
+
+def standing_out(view: View, factor: str, term: str) -> tuple[pd.DataFrame, pd.DataFrame, pd.DataFrame]:
+    """Groups of one factor and term whose interval lies above / below the population value, and beyond the target."""
+    rows = view.rows(factor, term).sort_values("outcome_mean", ascending=False, kind="stable")
+    population = view.population(term)
+    none = rows.iloc[:0]
+    above = rows[rows["outcome_lower"] > population["mean"]] if population else none
+    below = rows[rows["outcome_upper"] < population["mean"]] if population else none
+    beyond = rows[rows["p_beyond_target"] > TARGET_PROBABILITY] if view.target and term == "intercept" else none
+    return above, below, beyond
+
+
+def _names(view: View, rows: pd.DataFrame, change: bool) -> str:
+    named = [f"{g} ({view.scale.text(v, change)})" for g, v in zip(rows["group"], rows["outcome_mean"])][:NAMED]
+    return ", ".join(named) + (f" and {len(rows) - NAMED} more" if len(rows) > NAMED else "")
+
+
+def factor_sentences(view: View, factor: str, term: str) -> list:
+    above, below, beyond = standing_out(view, factor, term)
+    count = len(view.rows(factor, term))
+    change = term != "intercept"
+    what = "" if term == "intercept" else f" (change per unit of {term})"
+    level = view.level
+    lines = []
+    if len(above) or len(below):
+        parts = []
+        if len(above):
+            parts.append(f"{len(above)} above it: {_names(view, above, change)}")
+        if len(below):
+            parts.append(f"{len(below)} below it: {_names(view, below, change)}")
+        away = len(above) + len(below)
+        lines.append(f"{factor}{what}: {away} of {count} groups {'has its' if away == 1 else 'have their'} {level} "
+                     f"interval wholly away from the population value; " + "; ".join(parts) + ".")
+    else:
+        lines.append(f"{factor}{what}: no group's {level} interval lies wholly away from the population value "
+                     f"({count} groups).")
+    if view.target and term == "intercept":
+        target = view.target
+        side = "above" if target["direction"] == "above" else "below"
+        if len(beyond):
+            lines.append(f"{len(beyond)} of {count} groups {'is' if len(beyond) == 1 else 'are'} {side} the target of "
+                         f"{view.scale.text(target['value'])} with probability above {TARGET_PROBABILITY:g}: "
+                         f"{_names(view, beyond, False)}.")
+        else:
+            lines.append(f"No group is {side} the target of {view.scale.text(target['value'])} with probability "
+                         f"above {TARGET_PROBABILITY:g}.")
+    return lines
+
+
+def _table(view: View, factor: str, term: str) -> Raw:
+    above, below, beyond = standing_out(view, factor, term)
+    rows = pd.concat([above, below, beyond]).drop_duplicates(["group"])
+    if rows.empty:
+        return Raw("")
+    rows = rows.sort_values("outcome_mean", ascending=False, kind="stable")
+    labels = {"group": "group", "rows": "rows", "trials": "trials", "exposure": "exposure",
+              "outcome_mean": "estimate", "outcome_lower": f"{view.level} lower", "outcome_upper": f"{view.level} upper",
+              "p_above_population": "P(above population)", "rank_median": "rank",
+              "rank_lower": "rank from", "rank_upper": "rank to"}
+    if view.target and term == "intercept":
+        labels["p_beyond_target"] = "P(beyond target)"
+    note = (el("p", f"The first {MAX_ROWS} of {len(rows)} groups that stand out; all are in group_estimates.csv.",
+               class_="note") if len(rows) > MAX_ROWS else Raw(""))
+    return el("div", note, data_table(rows.head(MAX_ROWS), labels, f"Groups that stand out: {factor}, {term}",
+                                      sortable=True, shown=view.cells(term != "intercept")))
+
+
+def _contrasts(view: View) -> list:
+    table = view.run.contrasts
+    if table is None or table.empty:
+        return []
+    sentences = []
+    for r in table.itertuples(index=False):
+        what = "" if r.term == "intercept" else f" (change per unit of {r.term})"
+        sentences.append(el("li", f"{r.factor}{what}: {r.group_a} minus {r.group_b} = "
+                                  f"{view.scale.text(r.difference, True)} ({view.level} interval "
+                                  f"{view.scale.text(r.lower, True)} to {view.scale.text(r.upper, True)}); "
+                                  f"probability that {r.group_a} is higher: {probability(r.p_positive)}."))
+    return [el("h3", "Contrasts"), el("ul", sentences)]
+
+
+def standout_section(view: View, stamp: str | None) -> Raw:
+    """The "What stands out" section (``id="standout"``)."""
+    content = [banner(stamp)]
+    if not view.ready:
+        content.append(el("p", "group_estimates.csv is missing or has no outcome-scale columns (written by an "
+                          "older version): refit to see which groups stand out.", class_="note"))
+    else:
+        content.append(el("p", f"Groups are compared at {view.compared_at}, on the scale of {view.scale.label}."))
+        population = view.population("intercept")
+        if population:
+            content.append(el("p", el("strong", f"Population value (a typical group): "
+                                      f"{view.scale.text(population['mean'])}"),
+                              f" ({view.level} interval {view.scale.text(population['lower'])} to "
+                              f"{view.scale.text(population['upper'])})."))
+        for factor, term in view.keys():
+            content += [el("p", line) for line in factor_sentences(view, factor, term)]
+            content.append(_table(view, factor, term))
+        content += _contrasts(view)
+    return el("section", el("h2", "What stands out"), content, id="standout",
+              class_="not-for-use" if stamp else None)

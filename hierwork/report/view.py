@@ -1,0 +1,100 @@
+"""What the group sections of the report read from a run folder, gathered once.
+
+The outcome's scale, the reference values in words, the target, the
+population values and the group table, from ``plan.json`` (estimands),
+``summary.csv`` and ``group_estimates.csv``. Nothing is computed here beyond
+looking values up.
+"""
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import pandas as pd
+
+from hierwork.formatting import number, probability
+from hierwork.report.plotting import Scale, scale_of
+from hierwork.runfolder import Run
+
+
+#: Columns on the outcome's scale, and posterior probabilities, of group_estimates.csv and contrasts.csv.
+OUTCOME_COLUMNS = ("outcome_mean", "outcome_lower", "outcome_upper", "no_pooling_outcome", "complete_pooling_outcome",
+                   "difference", "lower", "upper")
+PROBABILITY_COLUMNS = ("p_above_population", "p_beyond_target", "p_top", "p_bottom", "p_positive")
+
+
+@dataclass(frozen=True)
+class View:
+    """A run's estimates as the report shows them (see the module docstring)."""
+
+    run: Run
+    table: pd.DataFrame | None
+    scale: Scale
+    estimands: dict
+
+    @classmethod
+    def of(cls, run: Run) -> "View":
+        outcome = (run.spec.get("outcome") or {}).get("column", "outcome") if isinstance(run.spec, dict) else "outcome"
+        return cls(run, run.group_estimates, scale_of(run.estimands, run.family, str(outcome)), run.estimands or {})
+
+    @property
+    def ready(self) -> bool:
+        """Whether the group table has the outcome-scale columns (runs of older versions do not)."""
+        return self.table is not None and "outcome_mean" in self.table.columns
+
+    @property
+    def link(self) -> tuple[str, str]:
+        """The family's link and the name of its scale (``("logit", "log-odds")``)."""
+        from hierwork.plan.families import REGISTRY, get_family
+
+        if self.run.family not in REGISTRY:
+            return "identity", "outcome units"
+        family = get_family(self.run.family)
+        return family.link, family.link_scale
+
+    @property
+    def level(self) -> str:
+        return f"{self.run.interval:.0%}"
+
+    @property
+    def target(self) -> dict | None:
+        return self.estimands.get("target")
+
+    @property
+    def rank_k(self) -> int:
+        return int(self.estimands.get("rank_k", 3))
+
+    @property
+    def per(self) -> float:
+        """``estimates.rate_per`` for rates (1 otherwise)."""
+        return float(self.estimands.get("scale", 1.0))
+
+    @property
+    def compared_at(self) -> str:
+        """The reference values in words."""
+        return str(self.estimands.get("text") or "the stored estimates (reference values not recorded)")
+
+    def cells(self, change: bool) -> dict:
+        """How table cells are written: values on the outcome's scale (``change``: differences), probabilities."""
+        writers = {c: (lambda v: self.scale.text(v, change)) for c in OUTCOME_COLUMNS}
+        writers.update({c: probability for c in PROBABILITY_COLUMNS})
+        writers["pooling_weight"] = lambda v: number(v, 2)
+        return writers
+
+    def keys(self) -> list:
+        """``(factor, term)`` pairs in table order."""
+        return [tuple(k) for k in self.table[["factor", "term"]].drop_duplicates().itertuples(index=False)]
+
+    def rows(self, factor: str, term: str) -> pd.DataFrame:
+        return self.table[(self.table["factor"] == factor) & (self.table["term"] == term)]
+
+    def population(self, term: str) -> dict | None:
+        """The population value of a term on the outcome's scale (``summary.csv`` row: mean, lower, upper)."""
+        summary = self.run.summary
+        if summary is None:
+            return None
+        names = ["outcome"] if term == "intercept" else [f"outcome_change.{term}", term]
+        for name in names:
+            row = summary[summary["parameter"] == name]
+            if not row.empty:
+                return row.iloc[0][["mean", "lower", "upper"]].astype(float).to_dict()
+        return None
