@@ -211,12 +211,18 @@ def test_eight_schools_baselines(eight_schools):
     np.testing.assert_allclose(rows.loc[data.index, "no_pooling"], data["effect"], rtol=1e-10)
 
 
-@pytest.mark.slow
-def test_eight_schools_partial_pooling_is_the_exact_posterior(eight_schools):
+def _eight_schools_exact():
+    """The data, and the exact posterior with its grid error (BDA3 §5.4), under the fixture's priors."""
     data = pd.read_csv(DATA / "eight_schools.csv")
     exact, grid_error = exact_with_grid_error(
         ybar=data["effect"], n=np.ones(len(data)), se=data["se"], mu_prior=EIGHT_SCHOOLS_PRIORS["mu"],
         tau_prior=stats.halfcauchy(scale=EIGHT_SCHOOLS_PRIORS["tau_beta"]), tau_max=800.0)
+    return data, exact, grid_error
+
+
+@pytest.mark.slow
+def test_eight_schools_partial_pooling_is_the_exact_posterior(eight_schools):
+    data, exact, grid_error = _eight_schools_exact()
     rows = _intercept_rows(eight_schools, "school").loc[data["school"]]
     draws = _group_values(eight_schools, "school").sel(school=list(data["school"]))
     mean_tol = MCSE_TOLERANCE * _mcse(draws, "mean") + grid_error["theta_mean"] + 1e-9
@@ -233,10 +239,7 @@ def test_eight_schools_partial_pooling_is_the_exact_posterior(eight_schools):
 @pytest.mark.slow
 def test_eight_schools_pooling_weight_is_the_exact_posterior_mean(eight_schools):
     # Known SDs: v_j = se_j^2 exactly; the weight is the posterior mean of se_j^2 / (se_j^2 + tau^2).
-    data = pd.read_csv(DATA / "eight_schools.csv")
-    exact, grid_error = exact_with_grid_error(
-        ybar=data["effect"], n=np.ones(len(data)), se=data["se"], mu_prior=EIGHT_SCHOOLS_PRIORS["mu"],
-        tau_prior=stats.halfcauchy(scale=EIGHT_SCHOOLS_PRIORS["tau_beta"]), tau_max=800.0)
+    data, exact, grid_error = _eight_schools_exact()
     rows = _intercept_rows(eight_schools, "school").loc[data["school"]]
     tau = eight_schools.posterior.posterior["school__sd"].sel(school__term="intercept", drop=True)
     v = xr.DataArray(data["se"].to_numpy() ** 2, dims="school")

@@ -232,7 +232,10 @@ def test_run_without_diagnostics_is_marked_unchecked(run_root, tmp_path):
 def test_write_report_replaces_files_atomically(run_root, tmp_path):
     run = copy_run(build_run(run_root), tmp_path / "rewrite")
     written = write_report(run)
-    assert set(written.paths) == {"report.html", "summary.md"}
+    assert set(written.paths) == {"report.html", "summary.md", "figures"}
+    figures = sorted(p.name for p in (run / "figures").iterdir())
+    ids = [a["id"] for t, a, _ in Page((run / "report.html").read_text()).elements if t == "figure"]
+    assert figures == sorted([f"{i}.png" for i in ids] + [f"{i}.svg" for i in ids])
     first = (run / "report.html").read_text()
     (run / "diagnostics.json").write_text("{not json")
     with pytest.raises(RunFolderError, match=re.escape("diagnostics.json is not valid JSON")):

@@ -3,6 +3,8 @@
 Each function draws rows of ``group_estimates.csv`` for one factor and term
 and returns a :class:`~hierwork.report.plotting.Plot`. Groups are sized and
 labelled by the information they carry: trials, else exposure, else rows.
+Vermillion and green are kept for the verdict (failed, passed), so estimates
+never borrow them; marker shape and line style repeat what colour says.
 """
 from __future__ import annotations
 
@@ -28,8 +30,15 @@ def volume(rows) -> tuple[str, np.ndarray]:
     return "rows", np.ones(len(rows))
 
 
-def _size_text(column: str, value) -> str:
-    return f"exposure {fmt(value)}" if column == "exposure" else f"{fmt(value)} {column}"
+def _volume_name(column: str, scale: Scale) -> str:
+    return scale.exposure if column == "exposure" and scale.exposure else column
+
+
+def _size_text(column: str, value, scale: Scale) -> str:
+    """``181 trials``, ``882.4 hours_run`` (the exposure column's name), ``12 rows``."""
+    if column == "exposure":
+        return f"{fmt(value)} {scale.exposure}" if scale.exposure else f"exposure {fmt(value)}"
+    return f"{fmt(value)} {column}"
 
 
 def _areas(values) -> np.ndarray:
@@ -91,7 +100,7 @@ def ranked_plot(rows, factor: str, term: str, scale: Scale, interval: float, ban
         ax = fig.add_subplot()
         position, axis = np.arange(len(rows))[::-1], ax.xaxis
         ax.hlines(position, rows["outcome_lower"], rows["outcome_upper"], color=PALETTE["blue"], linewidth=2)
-        ax.set_yticks(position, [f"{clip_text(g, 24)}  {_size_text(size_column, s)}"
+        ax.set_yticks(position, [f"{clip_text(g, 24)}  {_size_text(size_column, s, scale)}"
                                  for g, s in zip(rows["group"], sizes)])
         ax.set_ylim(-0.7, len(rows) - 0.3)
         ax.grid(axis="y", visible=False)
@@ -112,14 +121,14 @@ def ranked_plot(rows, factor: str, term: str, scale: Scale, interval: float, ban
              label=f"population value, {interval:.0%} interval")
         line(population, color=PALETTE["black"], linestyle="--", linewidth=1.1, label="population value")
     if target is not None:
-        line(target["value"], color=PALETTE["vermillion"], linestyle=":", linewidth=1.6,
+        line(target["value"], color=PALETTE["black"], linestyle=":", linewidth=1.8,
              label=f"target ({target['direction']} is beyond)")
     x, y = (np.asarray(p, dtype=float) for p in points)
     plain = ~(above | below)
     ax.scatter(x[plain], y[plain], s=22, color=PALETTE["blue"], zorder=3, label="estimate, interval overlaps population")
-    ax.scatter(x[above], y[above], s=34, marker="^", color=PALETTE["vermillion"], zorder=4,
+    ax.scatter(x[above], y[above], s=34, marker="^", color=PALETTE["purple"], zorder=4,
                label="interval above the population value")
-    ax.scatter(x[below], y[below], s=34, marker="v", color=PALETTE["green"], zorder=4,
+    ax.scatter(x[below], y[below], s=34, marker="v", color=PALETTE["orange"], zorder=4,
                label="interval below the population value")
     scale.format_axis(axis)
     what = "expected outcome" if term == "intercept" else f"change per unit of {term}"
@@ -174,19 +183,20 @@ def funnel_plot(rows, factor: str, scale: Scale, per: float, population: float,
     ax.scatter(sizes, rows["outcome_mean"], s=10, color=PALETTE["blue"], zorder=4, label="partial pooling")
     if np.nanmax(sizes) > 30 * np.nanmin(sizes):
         ax.set_xscale("log")
-    ax.set_xlabel(f"{size_column} (volume)")
+    name = _volume_name(size_column, scale)
+    ax.set_xlabel(f"{name} (volume)")
     ax.set_ylabel(clip_text(scale.axis_label("intercept"), 90))
     scale.format_axis(ax.yaxis)
     fig.suptitle(clip_text(f"{factor}: estimate against volume", 70), x=0.02, ha="left", weight="bold")
     fig.legend(loc="outside lower center", ncols=3, frameon=False)
     wide = outside[funnel.LEVELS[1]]
     named = ", ".join(str(g) for g in rows["group"][wide][:8]) + (", ..." if wide.sum() > 8 else "")
-    alt = (f"Funnel plot of {len(rows)} {factor} groups: own-data estimate against {size_column}. "
+    alt = (f"Funnel plot of {len(rows)} {factor} groups: own-data estimate against {name}. "
            f"{int(outside[funnel.LEVELS[0]].sum())} groups lie outside the 95% limits and {int(wide.sum())} "
            f"outside the 99.8% limits" + (f" ({named})" if wide.any() else "") + " around the population value "
            f"{scale.text(population)}.")
     caption = (f"{factor}: hollow circles are each group's estimate from its own data alone, filled points the "
-               f"partially pooled estimate, against the group's {size_column}. The curves are the 95% (dashed) "
+               f"partially pooled estimate, against the group's {name}. The curves are the 95% (dashed) "
                f"and 99.8% (dotted) limits within which a group's own estimate falls by chance if every group "
                f"had the population value (solid line; Spiegelhalter 2005, Statistics in Medicine 24:1185). "
                f"Own estimates beyond the 99.8% limits are unlikely to be chance alone.")
@@ -228,7 +238,7 @@ def pooling_plot(rows, factor: str, term: str, scale: Scale, interval: float, st
     change = term != "intercept"
 
     def moved(r):
-        return (f"{r['group']} ({_size_text(size_column, r[size_column])}) moved from "
+        return (f"{r['group']} ({_size_text(size_column, r[size_column], scale)}) moved from "
                 f"{scale.text(r['no_pooling_outcome'], change)} on its own data to "
                 f"{scale.text(r['outcome_mean'], change)} with partial pooling")
 
@@ -237,7 +247,7 @@ def pooling_plot(rows, factor: str, term: str, scale: Scale, interval: float, st
     alt = (f"Pooling plot for {factor}, {what}, {len(rows)} groups: {moved(smallest)}; "
            f"{moved(largest)}; {flat}.")
     caption = (f"{factor}, {what}: hollow circles are each group's estimate from its own "
-               f"data alone (no pooling; circle area grows with the group's {size_column}), filled "
+               f"data alone (no pooling; circle area grows with the group's {_volume_name(size_column, scale)}), filled "
                f"points and bars the partially pooled posterior mean and {interval:.0%} "
                f"interval, the dashed line complete pooling (one value for all groups). "
                f"Small groups are pulled further towards the population value. {note}")
@@ -273,7 +283,7 @@ def _forest(rows, axis: str, interval: float, complete, scale: Scale):
                        linewidths=1.4, zorder=3, label="own data only, beyond the axis")
     ax.set_xlim(*limits)
     ax.scatter(mean, y, s=22, color=PALETTE["blue"], zorder=4, label="partial pooling mean")
-    ax.set_yticks(y, [f"{clip_text(g, 24)}  {_size_text(size_column, s)}" for g, s in zip(rows["group"], sizes)])
+    ax.set_yticks(y, [f"{clip_text(g, 24)}  {_size_text(size_column, s, scale)}" for g, s in zip(rows["group"], sizes)])
     ax.set_ylim(-0.7, len(rows) - 0.3)
     ax.set_xlabel(clip_text(axis, 90))
     scale.format_axis(ax.xaxis)

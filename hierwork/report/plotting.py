@@ -74,11 +74,13 @@ class Plot:
 @dataclass(frozen=True)
 class Scale:
     """The outcome's scale for axes and text: ``kind`` (``probability``, ``rate``,
-    ``outcome units``) and ``label`` (``probability of late (out of deliveries)``).
-    Probabilities are shown as percentages (changes in percentage points)."""
+    ``outcome units``), ``label`` (``probability of late (out of deliveries)``) and
+    the name of the exposure column, if any. Probabilities are shown as
+    percentages (changes in percentage points)."""
 
     kind: str
     label: str
+    exposure: str | None = None
 
     @property
     def percent(self) -> bool:
@@ -105,14 +107,14 @@ class Scale:
             axis.set_major_formatter(FuncFormatter(lambda v, _: f"{100 * v:.3g}"))
 
 
-def scale_of(estimands: dict | None, family: str, outcome: str = "outcome") -> Scale:
+def scale_of(estimands: dict | None, family: str, outcome: str = "outcome", exposure: str | None = None) -> Scale:
     """The :class:`Scale` of a run: from ``plan.json``'s estimands, else from the family (older runs)."""
     if estimands:
-        return Scale(str(estimands.get("kind", "outcome units")), str(estimands.get("label", outcome)))
+        return Scale(str(estimands.get("kind", "outcome units")), str(estimands.get("label", outcome)), exposure)
     from hierwork.plan.families import REGISTRY, get_family
 
     kind = get_family(family).outcome_scale if family in REGISTRY else "outcome units"
-    return Scale(kind, outcome)
+    return Scale(kind, outcome, exposure)
 
 
 def clip_text(value, width: int = 30) -> str:

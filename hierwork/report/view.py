@@ -33,8 +33,9 @@ class View:
 
     @classmethod
     def of(cls, run: Run) -> "View":
-        outcome = (run.spec.get("outcome") or {}).get("column", "outcome") if isinstance(run.spec, dict) else "outcome"
-        return cls(run, run.group_estimates, scale_of(run.estimands, run.family, str(outcome)), run.estimands or {})
+        outcome = run.spec.get("outcome") if isinstance(run.spec.get("outcome"), dict) else {}
+        scale = scale_of(run.estimands, run.family, str(outcome.get("column", "outcome")), outcome.get("exposure"))
+        return cls(run, run.group_estimates, scale, run.estimands or {})
 
     @property
     def ready(self) -> bool:

@@ -21,7 +21,10 @@ from hierwork.inference.convergence import diagnose
 from hierwork.plan.plan import FactorPlan, ModelPlan
 from hierwork.results.outcome import factor_values, family_params, population_outcome_draws
 from hierwork.results.pooling import pooling_weights
-from hierwork.results.rankings import CONTRAST_COLUMNS, bounds, contrast_rows, standing
+from hierwork.results.rankings import CONTRAST_COLUMNS, bounds, contrast_rows, rank_draws, rank_summary, standing
+
+#: Draws x groups of one factor handled at once.
+BLOCK_CELLS = 20_000_000
 
 #: Columns of ``group_estimates.csv`` in order (``trials``, ``events``, ``exposure`` only where they apply).
 GROUP_COLUMNS = ("factor", "group", "term", "rows", "trials", "events", "exposure",
@@ -61,29 +64,52 @@ def group_estimates(idata, plan: ModelPlan, baseline: pd.DataFrame, interval: fl
     pandas.DataFrame
         The columns of :data:`GROUP_COLUMNS` (see the module docstring and the README).
     """
-    lo, hi = bounds(interval)
     weights = pooling_weights(idata, plan)
     frames = []
     for f in plan.factors:
-        values = factor_values(idata, plan, f)
-        link = values.link.reshape(-1, f.n_groups, len(f.varying))
-        outcome = values.outcome.reshape(-1, f.n_groups, len(f.varying))
-        population = values.population_link.reshape(-1, len(f.varying))
+        columns = _factor_columns(idata, plan, f, interval)
         for t, term in enumerate(f.varying):
-            frames.append(pd.DataFrame({
-                "factor": f.name, "group": list(f.levels), "term": term, **group_sizes(plan, f),
-                "partial_mean": link[:, :, t].mean(axis=0), "partial_sd": link[:, :, t].std(axis=0, ddof=1),
-                "lower": np.quantile(link[:, :, t], lo, axis=0), "upper": np.quantile(link[:, :, t], hi, axis=0),
-                "outcome_mean": outcome[:, :, t].mean(axis=0),
-                "outcome_lower": np.quantile(outcome[:, :, t], lo, axis=0),
-                "outcome_upper": np.quantile(outcome[:, :, t], hi, axis=0),
-                "pooling_weight": weights[f.name][:, t],
-                **standing(link[:, :, t], outcome[:, :, t], population[:, t], plan.estimands, t == 0, interval)}))
+            frames.append(pd.DataFrame({"factor": f.name, "group": list(f.levels), "term": term,
+                                        **group_sizes(plan, f), **columns[t], "pooling_weight": weights[f.name][:, t]}))
     partial = pd.concat(frames, ignore_index=True)
     table = baseline.merge(partial, on=["factor", "group", "term"], how="left", validate="one_to_one")
     table["no_pooling_outcome"] = _baseline_outcome(idata, plan, table, "no_pooling")
     table["complete_pooling_outcome"] = _baseline_outcome(idata, plan, table, "complete_pooling")
     return table[[c for c in GROUP_COLUMNS if c in table.columns]]
+
+
+def _factor_columns(idata, plan: ModelPlan, f: FactorPlan, interval: float) -> list:
+    """Per varying term, the posterior columns of every group of ``f``.
+
+    Groups are taken in blocks of at most :data:`BLOCK_CELLS` draws x groups so
+    that memory does not grow with draws times groups; the ranks, which need
+    every group at once, use the evenly spaced draws of
+    :func:`hierwork.results.rankings.rank_draws`, collected block by block.
+    """
+    lo, hi = bounds(interval)
+    q, J = len(f.varying), f.n_groups
+    D = int(np.prod(idata.posterior["b"].shape[:2]))
+    ranked = rank_draws(D, J)
+    kept = np.empty((q, len(ranked), J))
+    step = max(1, BLOCK_CELLS // max(D, 1))
+    parts = [[] for _ in range(q)]
+    for start in range(0, J, step):
+        block = np.arange(start, min(start + step, J))
+        values = factor_values(idata, plan, f, block)
+        link = values.link.reshape(D, len(block), q)
+        outcome = values.outcome.reshape(D, len(block), q)
+        population = values.population_link.reshape(D, q)
+        for t in range(q):
+            kept[t][:, block] = outcome[ranked, :, t]
+            parts[t].append({
+                "partial_mean": link[:, :, t].mean(axis=0), "partial_sd": link[:, :, t].std(axis=0, ddof=1),
+                "lower": np.quantile(link[:, :, t], lo, axis=0), "upper": np.quantile(link[:, :, t], hi, axis=0),
+                "outcome_mean": outcome[:, :, t].mean(axis=0),
+                "outcome_lower": np.quantile(outcome[:, :, t], lo, axis=0),
+                "outcome_upper": np.quantile(outcome[:, :, t], hi, axis=0),
+                **standing(link[:, :, t], outcome[:, :, t], population[:, t], plan.estimands, t == 0)})
+    return [{**{k: np.concatenate([p[k] for p in parts[t]]) for k in parts[t][0]},
+             **rank_summary(kept[t], plan.estimands.rank_k, interval)} for t in range(q)]
 
 
 def _baseline_outcome(idata, plan: ModelPlan, table: pd.DataFrame, column: str) -> np.ndarray:
@@ -104,12 +130,12 @@ def _baseline_outcome(idata, plan: ModelPlan, table: pd.DataFrame, column: str) 
 
 def contrasts(idata, plan: ModelPlan, interval: float) -> pd.DataFrame:
     """``contrasts.csv``: every requested contrast (``estimates.contrasts``), one row per varying term."""
-    rows, cache = [], {}
+    rows = []
     for name, a, b in plan.estimands.contrasts:
         f = plan.factor(name)
-        if name not in cache:
-            cache[name] = factor_values(idata, plan, f).outcome.reshape(-1, f.n_groups, len(f.varying))
-        rows += contrast_rows(name, a, b, list(f.levels), f.varying, cache[name], interval)
+        pair = [f.levels.index(a), f.levels.index(b)]
+        outcome = factor_values(idata, plan, f, pair).outcome.reshape(-1, 2, len(f.varying))
+        rows += contrast_rows(name, a, b, f.varying, outcome, interval)
     return pd.DataFrame(rows, columns=list(CONTRAST_COLUMNS))
 
 

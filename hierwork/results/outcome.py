@@ -37,13 +37,14 @@ class FactorValues:
     population_outcome: np.ndarray
 
 
-def group_coefficient_draws(idata, plan: ModelPlan, f: FactorPlan) -> np.ndarray:
-    """Draws of each group's own coefficients (every predictor at 0), shape (chain, draw, J, q)."""
+def group_coefficient_draws(idata, plan: ModelPlan, f: FactorPlan, groups=None) -> np.ndarray:
+    """Draws of the own coefficients (every predictor at 0) of ``groups`` (default all): (chain, draw, J, q)."""
     post = idata.posterior
+    idx = np.arange(f.n_groups) if groups is None else np.asarray(groups)
     b = post["b"].values  # (c, d, p)
     out = np.stack([b[..., col] for col in f.varying_cols], axis=-1)[:, :, None, :]
-    out = np.broadcast_to(out, out.shape[:2] + (f.n_groups, len(f.varying))).copy()
-    node, idx = f, np.arange(f.n_groups)
+    out = np.broadcast_to(out, out.shape[:2] + (len(idx), len(f.varying))).copy()
+    node = f
     while True:
         effect = post[f"{node.name}__effect"].values  # (c, d, J_node, q_node)
         for t, term in enumerate(f.varying):
@@ -80,11 +81,12 @@ def population_eta(idata, plan: ModelPlan, x: np.ndarray) -> np.ndarray:
     return idata.posterior["b"].values @ x + _others(idata, plan, ())
 
 
-def factor_values(idata, plan: ModelPlan, f: FactorPlan) -> FactorValues:
-    """Every group's intercept at the reference values and slopes, and the population's, on both scales."""
+def factor_values(idata, plan: ModelPlan, f: FactorPlan, groups=None) -> FactorValues:
+    """The intercepts at the reference values and slopes of ``groups`` (positions; default all), and the
+    population's, on both scales."""
     ref, family = plan.estimands, plan.family
     b = idata.posterior["b"].values
-    coef = group_coefficient_draws(idata, plan, f)
+    coef = group_coefficient_draws(idata, plan, f, groups)
     slopes = list(f.varying_cols[1:])
     fixed = [k for k in range(b.shape[-1]) if k not in f.varying_cols]
     link = coef

@@ -36,8 +36,8 @@ def bounds(interval: float) -> tuple[float, float]:
 
 
 def standing(link: np.ndarray, outcome: np.ndarray, population_link: np.ndarray, estimands,
-             is_level: bool, interval: float) -> dict:
-    """Per-group columns for one factor and term from draws ``link``, ``outcome`` (D, J) and the population's (D,).
+             is_level: bool) -> dict:
+    """``p_above_population`` and ``p_beyond_target`` from draws ``link``, ``outcome`` (D, J) and the population's (D,).
 
     ``is_level`` marks the intercept row (the group's expected outcome), the only one a target applies to.
     """
@@ -48,7 +48,6 @@ def standing(link: np.ndarray, outcome: np.ndarray, population_link: np.ndarray,
         out["p_beyond_target"] = beyond.mean(axis=0)
     else:
         out["p_beyond_target"] = np.full(link.shape[1], np.nan)
-    out.update(rank_summary(outcome, estimands.rank_k, interval))
     return out
 
 
@@ -60,23 +59,27 @@ def ranks(values: np.ndarray) -> np.ndarray:
     return out
 
 
+def rank_draws(n_draws: int, n_groups: int) -> np.ndarray:
+    """Positions of the draws the ranks use: every draw within :data:`RANK_CELLS`, else evenly spaced ones."""
+    return within_budget(n_draws, n_groups, RANK_CELLS)
+
+
 def rank_summary(values: np.ndarray, k: int, interval: float) -> dict:
-    """``rank_median, rank_lower, rank_upper, p_top, p_bottom`` of draws ``values`` (D, J)."""
-    D, J = values.shape
-    r = ranks(values[within_budget(D, J, RANK_CELLS)])
+    """``rank_median, rank_lower, rank_upper, p_top, p_bottom`` of draws ``values`` (D, J) of every group."""
+    J = values.shape[1]
+    r = ranks(values)
     lo, hi = bounds(interval)
     median, lower, upper = np.quantile(r, [0.5, lo, hi], axis=0, method="inverted_cdf")
     return {"rank_median": median, "rank_lower": lower, "rank_upper": upper,
             "p_top": (r <= k).mean(axis=0), "p_bottom": (r > J - k).mean(axis=0)}
 
 
-def contrast_rows(factor: str, a: str, b: str, levels, terms, outcome: np.ndarray, interval: float) -> list:
-    """Rows of ``contrasts.csv`` for groups ``a`` and ``b``: one per term, from outcome draws (D, J, q)."""
-    ia, ib = levels.index(a), levels.index(b)
+def contrast_rows(factor: str, a: str, b: str, terms, outcome: np.ndarray, interval: float) -> list:
+    """Rows of ``contrasts.csv`` for groups ``a`` and ``b``: one per term, from their outcome draws (D, 2, q)."""
     lo, hi = bounds(interval)
     rows = []
     for t, term in enumerate(terms):
-        diff = outcome[:, ia, t] - outcome[:, ib, t]
+        diff = outcome[:, 0, t] - outcome[:, 1, t]
         rows.append({"factor": factor, "group_a": a, "group_b": b, "term": term,
                      "difference": float(diff.mean()), "difference_sd": float(diff.std(ddof=1)),
                      "lower": float(np.quantile(diff, lo)), "upper": float(np.quantile(diff, hi)),
