@@ -121,6 +121,18 @@ def test_depot_delays_structure(demo):
 
 
 @pytest.mark.parametrize("spec_file", DEMO_SPECS)
+def test_default_priors_imply_outcomes_on_the_observed_scale(demo_data, spec_file):
+    # The default-prior rule (README, "Default priors") must pass the prior predictive check on
+    # every demo spec: no warning, few simulated outcomes far outside the observed range.
+    from hierwork.pipeline import check
+    from hierwork.results.prior_predictive import prior_predictive
+
+    plan = check(SPEC_DIR / spec_file).plan
+    summary = prior_predictive(plan, seed=3, draws=300)
+    assert summary["warnings"] == [], summary
+
+
+@pytest.mark.parametrize("spec_file", DEMO_SPECS)
 def test_specs_name_columns_of_their_data(demo, spec_file):
     spec = yaml.safe_load((SPEC_DIR / spec_file).read_text())
     data_path = (SPEC_DIR / spec["data"]).resolve()

@@ -9,7 +9,7 @@ A step that does not address the failure at hand is skipped:
     the divergences check failed: divergent transitions flag regions the
     integrator cannot follow, and a smaller step size is the first remedy
     (Betancourt 2017, "A Conceptual Introduction to Hamiltonian Monte Carlo",
-    section 6.2; Stan Reference Manual, "Divergent transitions").
+    section 6.2).
 ``parameterisation``
     Switch the failing factor between centred and non-centred forms. The
     factor is the one named by a failing check's ``worst_parameter``

@@ -8,8 +8,8 @@ correlation matrix) and its log density for checks after sampling.
 Default rule (``hierwork check`` marks defaults with ``*``; ``plan.json`` stores
 each default with the sentence that derived it). Let ``S`` be the outcome's
 reference spread on the linear predictor's scale (its SD for continuous
-outcomes; one unit of log-odds or log rate for the logit and log links, i.e.
-odds or rates multiplied by e = 2.7) and ``m`` its centre there (mean, logit of
+outcomes; half a unit of log-odds or log rate for the logit and log links, i.e.
+odds or rates multiplied by 1.65) and ``m`` its centre there (mean, logit of
 the pooled share, log of the pooled rate). With ``M = 5`` spreads and
 ``z = 2.576`` (the 99% point of the normal):
 

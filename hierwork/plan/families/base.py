@@ -42,6 +42,10 @@ class OutcomeRows:
                              for f in fields(self)))
 
 
+#: Reference spread of the outcome on the logit and log scales (default priors): half a unit, that is
+#: odds or rates multiplied by e^0.5 = 1.65, already a large difference between groups or conditions.
+LINK_SPREAD = 0.5
+
 #: Outcome columns a family may use: spec key under ``outcome`` -> what it holds (for messages).
 COLUMN_ROLES = {"trials": "number of trials", "exposure": "exposure (log offset)",
                 "known_sd": "known standard error"}

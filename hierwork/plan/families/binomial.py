@@ -4,7 +4,7 @@ from __future__ import annotations
 import numpy as np
 from scipy import special
 
-from hierwork.plan.families.base import Family, OutcomeRows
+from hierwork.plan.families.base import LINK_SPREAD, Family, OutcomeRows
 
 
 class Binomial(Family):
@@ -28,7 +28,7 @@ class Binomial(Family):
     def link_centre_spread(self, rows):
         p = float(np.sum(rows.y) / np.sum(self.trials(rows)))
         p = min(max(p, 0.01), 0.99)
-        return float(np.log(p / (1 - p))), 1.0
+        return float(np.log(p / (1 - p))), LINK_SPREAD
 
     def working_response(self, rows):
         y, n = rows.y, self.trials(rows)

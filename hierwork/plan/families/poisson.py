@@ -4,7 +4,7 @@ from __future__ import annotations
 import numpy as np
 from scipy import special
 
-from hierwork.plan.families.base import Family, OutcomeRows
+from hierwork.plan.families.base import LINK_SPREAD, Family, OutcomeRows
 
 
 class Poisson(Family):
@@ -29,7 +29,7 @@ class Poisson(Family):
 
     def link_centre_spread(self, rows):
         total = np.sum(rows.exposure) if rows.exposure is not None else len(rows.y)
-        return float(np.log(max(float(np.sum(rows.y) / total), 1e-3))), 1.0
+        return float(np.log(max(float(np.sum(rows.y) / total), 1e-3))), LINK_SPREAD
 
     def working_response(self, rows):
         return np.log((rows.y + 0.5) / self.exposure(rows)), 1.0 / (rows.y + 0.5)
