@@ -335,3 +335,19 @@ def test_long_group_tables_are_cut_with_a_pointer_to_the_csv(run_root, monkeypat
     highest = estimates.sort_values("outcome_mean", ascending=False)["group"].head(5)
     cells = [text for _, a, text in Page(table.group(1)).find("td", **{"class": "label"})]
     assert cells == list(highest)
+
+
+def test_run_folder_of_an_older_version_still_renders(run_root, tmp_path):
+    # Before the outcome's scale: `n` for the sizes, no outcome columns, no estimands in plan.json.
+    run = copy_run(build_run(run_root), tmp_path / "older")
+    table = pd.read_csv(run / "group_estimates.csv", keep_default_na=False)
+    table = table[["factor", "group", "term", "rows", "no_pooling", "complete_pooling", "partial_mean",
+                   "partial_sd", "lower", "upper"]].rename(columns={"rows": "n"})
+    table.to_csv(run / "group_estimates.csv", index=False)
+    plan = json.loads((run / "plan.json").read_text())
+    del plan["estimands"]
+    (run / "plan.json").write_text(json.dumps(plan))
+    page = Page(render_report(run))
+    assert page.errors == []
+    assert "written by an older version" in page.find("section", id="standout")[0][2]
+    assert page.find("figure", id="traces") and page.find("figure", id="divergences")

@@ -182,7 +182,10 @@ def _smallest_group(estimates, factor, effect):
     rows = estimates[(estimates["factor"] == factor)]
     labels = set(map(str, effect[factor].values))
     rows = rows[rows["group"].isin(labels)]
-    return None if rows.empty else rows.sort_values("rows", kind="stable")["group"].iloc[0]
+    size = next((c for c in ("rows", "n") if c in rows.columns), None)  # "n" in runs of older versions
+    if rows.empty or size is None:
+        return None
+    return rows.sort_values(size, kind="stable")["group"].iloc[0]
 
 
 # --- posterior predictive --------------------------------------------------------

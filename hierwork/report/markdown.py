@@ -85,10 +85,12 @@ def _groups(view: View) -> list[str]:
     lines = ["## Group estimates", "", md_escape(f"On the scale of {view.scale.label}; highest first."), ""]
     for factor, term in view.keys():
         rows = view.rows(factor, term).sort_values("outcome_mean", ascending=False, kind="stable")
-        shown = rows.head(MAX_GROUP_ROWS)
+        top, bottom = MAX_GROUP_ROWS - MAX_GROUP_ROWS // 2, MAX_GROUP_ROWS // 2
+        shown = rows if len(rows) <= MAX_GROUP_ROWS else pd.concat([rows.head(top), rows.tail(bottom)])
         lines += [f"### {md_escape(factor)}: {md_escape(term)}", ""]
         if len(rows) > len(shown):
-            lines += [f"The {len(shown)} highest of {len(rows)} groups; all are in group\\_estimates.csv.", ""]
+            lines += [f"The {top} highest and {bottom} lowest of {len(rows)} groups; all are in "
+                      "group\\_estimates.csv.", ""]
         lines += _table(shown, {"group": "group", "rows": "rows", "trials": "trials", "exposure": "exposure",
                                 "outcome_mean": "estimate", "outcome_lower": f"{view.level} lower",
                                 "outcome_upper": f"{view.level} upper", "no_pooling_outcome": "own data only",
