@@ -29,7 +29,7 @@ ARTIFACTS = Path(__file__).parent / "artifacts"
 # Okabe and Ito (2008) colours used by the report (hierwork/report/style.css, figures.py).
 VERMILLION, GREEN, ORANGE = (0xD5, 0x5E, 0x00), (0x00, 0x9E, 0x73), (0xE6, 0x9F, 0x00)
 
-pytestmark = [pytest.mark.browser,
+pytestmark = [pytest.mark.browser, pytest.mark.slow,
               pytest.mark.skipif(CHROMIUM is None, reason="chromium is not installed "
                                  "(apt-get install chromium; CI installs it)")]
 
