@@ -26,7 +26,7 @@ from test_report_fixture import HOSTILE, Page, build_run, run_root  # noqa: F401
 
 CHROMIUM = shutil.which("chromium") or shutil.which("chromium-browser")
 ARTIFACTS = Path(__file__).parent / "artifacts"
-# Okabe and Ito (2008) colours used by the report (hierwork/report/style.css, figures.py).
+# Okabe and Ito (2008) colours used by the report (hierwork/report/style.css, plotting.py).
 VERMILLION, GREEN, BLUE = (0xD5, 0x5E, 0x00), (0x00, 0x9E, 0x73), (0x00, 0x72, 0xB2)
 
 pytestmark = [pytest.mark.browser, pytest.mark.slow,  # the fixtures fit the report's run (MCMC)

@@ -2,7 +2,7 @@
 
 Reference: ArviZ 0.23 ``az.rhat`` (method "rank"), ``az.ess`` (methods "bulk"
 and "tail"), which implement Vehtari et al. (2021), Bayesian Analysis 16,
-667-718. hierwork's :func:`hierwork.convergence.diagnose` must give the same
+667-718. hierwork's :func:`hierwork.inference.convergence.diagnose` must give the same
 numbers to rounding error on every kind of input the gate meets: mixing and
 sticky chains, chains that disagree, ties, constants, non-finite draws, odd and
 tiny draw counts, one chain.
@@ -56,7 +56,7 @@ def test_matches_arviz(chains, draws, phi):
 
 def test_blocks_do_not_change_results(monkeypatch):
     """Many parameters are processed in blocks; the block size must not matter."""
-    import hierwork.convergence as convergence
+    import hierwork.inference.convergence as convergence
 
     x = _ar1(np.random.default_rng(3), 2, 200, 50, 0.7)
     whole = np.stack(diagnose(x))
