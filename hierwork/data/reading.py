@@ -17,8 +17,9 @@ import numpy as np
 import pandas as pd
 
 from hierwork.data.labels import group_labels
-from hierwork.data.rows import RowRef, check_missing, numeric
+from hierwork.data.rows import RowRef, check_missing, missing_rows, numeric
 from hierwork.errors import DataError, SpecError, choices_hint
+from hierwork.plan.design import check_transform
 from hierwork.plan.families import get_family
 from hierwork.plan.families.base import OutcomeRows
 
@@ -45,6 +46,9 @@ class Dataset:
         parents' for nested factors (``"north/7"``).
     categorical : dict
         Predictor column -> levels with the reference level first.
+    missing : dict
+        What ``missing`` did: ``policy`` (``error`` or ``drop``), ``rows_read``,
+        ``rows_removed`` and ``by_column`` (column -> rows with a gap there).
     """
 
     frame: pd.DataFrame
@@ -53,6 +57,7 @@ class Dataset:
     ref: RowRef
     labels: dict = field(default_factory=dict)
     categorical: dict = field(default_factory=dict)
+    missing: dict = field(default_factory=dict)
 
     @property
     def n(self) -> int:
@@ -114,7 +119,7 @@ def load_dataset(spec) -> Dataset:
                             where=f"{spec.where(key)} -> {path}",
                             hint=choices_hint(column, list(table.columns)))
     frame = table[list(used)].copy()
-    check_missing(frame, used, ref)
+    frame, ref, missing = _handle_missing(spec, frame, used, ref)
     _check_outcome(spec, frame, ref)
     categorical = _check_predictors(spec, frame, ref)
     labels = group_labels(frame, spec.factors)
@@ -122,7 +127,22 @@ def load_dataset(spec) -> Dataset:
     _check_group_predictors(spec, frame, labels, path)
     frame = frame.reset_index(drop=True)
     return Dataset(frame=frame, path=path, sha256=hashlib.sha256(raw_bytes).hexdigest(), ref=ref,
-                   labels=labels, categorical=categorical)
+                   labels=labels, categorical=categorical, missing=missing)
+
+
+def _handle_missing(spec, frame, used: dict, ref: RowRef):
+    """Apply the spec's ``missing`` policy: refuse gaps (``error``) or remove their rows (``drop``)."""
+    summary = {"policy": spec.values["missing"], "rows_read": len(frame), "rows_removed": 0, "by_column": {}}
+    if summary["policy"] == "error":
+        check_missing(frame, used, ref)
+        return frame, ref, summary
+    mask, by_column = missing_rows(frame, used)
+    if mask.all():
+        raise DataError(f"every row has a missing value in a column the model uses "
+                        f"({', '.join(map(repr, by_column))})", where=ref.where,
+                        hint="'missing: drop' would leave no rows; fill in the values")
+    summary.update(rows_removed=int(mask.sum()), by_column=by_column)
+    return frame.loc[~mask].reset_index(drop=True), ref.subset(~mask), summary
 
 
 def used_columns(spec) -> dict:
@@ -178,10 +198,15 @@ def _check_predictors(spec, frame, ref: RowRef) -> dict:
                                 where=spec.where(f"predictors[{i}].reference"),
                                 hint="remove it, or set type: categorical")
             values = numeric(frame, p.column, "predictor", ref)
+            check_transform(values, p.transform, p.column, ref)
             if np.ptp(values) == 0:
                 raise DataError(f"predictor {p.column!r} has the same value ({values[0]:g}) in every row",
                                 where=ref.where, hint="a predictor that never changes cannot be estimated; remove it")
             continue
+        if p.transform is not None:
+            raise SpecError(f"transform {p.transform} applies to numeric predictors; {p.column!r} is categorical",
+                            where=spec.where(f"predictors[{i}].transform"),
+                            hint="remove the transform, or set type: numeric if the column holds numbers")
         labels = values.astype(str).str.strip()
         frame[p.column] = labels
         levels = sorted(labels.unique())

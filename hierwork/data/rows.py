@@ -58,6 +58,26 @@ def check_missing(frame: pd.DataFrame, used: dict, ref: RowRef) -> None:
                             hint="fill them in, drop those rows, or set 'missing: drop' in the spec")
 
 
+def missing_rows(frame: pd.DataFrame, used: dict) -> tuple[np.ndarray, dict]:
+    """Rows with a missing value in any used column, and how many each column has.
+
+    Returns
+    -------
+    mask : ndarray of bool (n,)
+        Rows to remove for ``missing: drop``.
+    by_column : dict
+        Column -> number of its missing cells (a row missing two columns counts in both),
+        only columns with any.
+    """
+    mask, by_column = np.zeros(len(frame), dtype=bool), {}
+    for column in used:
+        gaps = blank(frame[column])
+        if gaps.any():
+            by_column[column] = int(gaps.sum())
+            mask |= gaps
+    return mask, by_column
+
+
 def numeric(frame: pd.DataFrame, column: str, role: str, ref: RowRef) -> np.ndarray:
     """The column as finite floats, or a message naming the rows that are not.
 

@@ -57,11 +57,17 @@ FACTOR_KEYS = {
 }
 
 PREDICTOR_KEYS = {
-    "column": Key("str", "Column name."),
+    "column": Key("str", "Column name (required unless the entry is an 'interaction').", None),
     "type": Key("choice", "How the column enters: numeric as given, or categorical (treatment coding).",
                 "auto", choices=("auto", "numeric", "categorical")),
     "reference": Key("str", "Reference level of a categorical predictor (default: the first in sort order).",
                      None),
+    "transform": Key("choice", "Numeric predictors: enter as log(column) (values > 0), sqrt(column) "
+                     "(values >= 0) or standardised(column) ((x - mean) / SD of the fitted data).", None,
+                     choices=("log", "sqrt", "standardise")),
+    "interaction": Key("list", "Instead of 'column': two or more predictor columns (each listed in "
+                       "'predictors') whose terms are multiplied, numeric or categorical; terms are "
+                       "named a:b (engine_hours:sea_state=rough).", None, item=Key("str", "a predictor column")),
 }
 
 SPEC_KEYS = {
@@ -78,6 +84,9 @@ SPEC_KEYS = {
         "exposure": Key("str", "poisson / negative_binomial: column of exposures (log offset).", None),
         "known_sd": Key("str", "normal: column of known per-row standard errors (meta-analysis).", None),
     }),
+    "missing": Key("choice", "Rows with a missing value in a column the model uses: 'error' stops with "
+                   "a message naming them; 'drop' removes them (check, plan.json and the report "
+                   "count the rows removed per column).", "error", choices=("error", "drop")),
     "predictors": Key("list", "Population-level terms shared by all groups.", [],
                       item=Key("predictor", "a column name, or {column, type, reference}",
                                fields=PREDICTOR_KEYS)),

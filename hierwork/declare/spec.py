@@ -32,11 +32,20 @@ class Outcome:
 
 @dataclass(frozen=True)
 class Predictor:
-    """A population-level term: a column, numeric or categorical (with reference level)."""
+    """A population-level column: numeric (optionally transformed) or categorical (with reference level)."""
 
     column: str
     type: str = "auto"
     reference: object = None
+    transform: str | None = None
+
+
+@dataclass(frozen=True)
+class Interaction:
+    """An interaction of predictor columns; ``position`` is its entry in ``predictors`` (for messages)."""
+
+    columns: tuple
+    position: int
 
 
 @dataclass(frozen=True)
@@ -74,6 +83,7 @@ class Spec:
     predictors: tuple = ()
     factors: tuple = ()
     priors: dict = field(default_factory=dict)
+    interactions: tuple = ()
 
     @property
     def name(self) -> str:
@@ -156,7 +166,7 @@ def spec_from_document(document: YamlDocument) -> Spec:
                         where=document.where("data"), hint="paths are relative to the spec file")
     outcome = Outcome(**values["outcome"])
     _check_outcome(outcome, document)
-    predictors = tuple(Predictor(**p) for p in values["predictors"])
+    predictors, interactions = _predictor_entries(values["predictors"], document)
     factors = tuple(
         Factor(name=name, column=f["column"] or name, varying=tuple(f["varying"]),
                predictors=tuple(f["predictors"]), within=f["within"],
@@ -167,7 +177,43 @@ def spec_from_document(document: YamlDocument) -> Spec:
     check_estimates(values, outcome, predictors, factors, document)
     priors = {k: PriorSpec(*next(iter(v.items()))) for k, v in values["priors"].items()}
     return Spec(values=values, document=document, data_path=data_path, outcome=outcome,
-                predictors=predictors, factors=factors, priors=priors)
+                predictors=predictors, factors=factors, priors=priors, interactions=interactions)
+
+
+def _predictor_entries(entries: list, doc: YamlDocument) -> tuple:
+    """Split ``predictors`` into columns and interactions, checking each entry's form."""
+    columns = [e["column"] for e in entries if e["column"] is not None]
+    predictors, interactions, seen = [], [], set()
+    for i, e in enumerate(entries):
+        where = doc.where(f"predictors[{i}]")
+        if e["interaction"] is None:
+            if e["column"] is None:
+                raise SpecError("a predictor needs 'column' (or 'interaction')", where=where,
+                                hint="write - dose, - {column: dose, transform: log} or "
+                                     "- {interaction: [engine_hours, sea_state]}")
+            if columns.count(e["column"]) > 1:
+                raise SpecError(f"predictor {e['column']!r} is listed twice", where=where)
+            predictors.append(Predictor(e["column"], e["type"], e["reference"], e["transform"]))
+            continue
+        extra = [k for k in ("column", "reference", "transform") if e[k] is not None] + ["type"] * (e["type"] != "auto")
+        if extra:
+            raise SpecError(f"an interaction entry takes no {extra[0]!r}", where=where,
+                            hint="list the columns under 'predictors' with their own settings; "
+                                 "the interaction multiplies their terms")
+        parts = tuple(e["interaction"])
+        if len(set(parts)) < 2 or len(set(parts)) != len(parts):
+            raise SpecError(f"an interaction needs two or more different columns, got {list(parts)!r}",
+                            where=doc.where(f"predictors[{i}].interaction"))
+        for column in parts:
+            if column not in columns:
+                raise SpecError(f"interaction column {column!r} is not listed in 'predictors'",
+                                where=doc.where(f"predictors[{i}].interaction"),
+                                hint=f"add - {column} to 'predictors' (its main effect)")
+        if frozenset(parts) in seen:
+            raise SpecError(f"the interaction of {' and '.join(parts)} is listed twice", where=where)
+        seen.add(frozenset(parts))
+        interactions.append(Interaction(parts, i))
+    return tuple(predictors), tuple(interactions)
 
 
 def _apply_overrides(document: YamlDocument, overrides: dict) -> YamlDocument:
@@ -338,6 +384,7 @@ def _check_outcome(outcome: Outcome, doc: YamlDocument) -> None:
 def _check_factors(factors, predictors, doc: YamlDocument) -> None:
     names = [f.name for f in factors]
     pred_names = [p.column for p in predictors]
+    transformed = {p.column: p.transform for p in predictors if p.transform}
     for f in factors:
         base = f"groups.{f.name}"
         if "intercept" not in f.varying:
@@ -349,6 +396,10 @@ def _check_factors(factors, predictors, doc: YamlDocument) -> None:
             if term != "intercept" and term in f.predictors:
                 raise SpecError(f"{term!r} cannot be both a varying slope and a group-level predictor",
                                 where=doc.where(f"{base}.varying[{i}]"))
+            if term in transformed:
+                raise SpecError(f"{term!r} enters transformed ({transformed[term]}); only untransformed "
+                                "columns can have varying slopes", where=doc.where(f"{base}.varying[{i}]"),
+                                hint="add a column holding the transformed values and vary that")
         if f.within is not None:
             if f.within not in names:
                 raise SpecError(f"'within' names {f.within!r}, which is not a factor in 'groups'",

@@ -29,6 +29,7 @@ def plan_as_dict(plan, decisions: dict | None = None) -> dict:
         "rows": plan.n,
         "family": plan.family.name,
         "link": plan.family.link,
+        "missing": plan.missing,
         "terms": list(plan.terms),
         "design": plan.design.to_dict(),
         "factors": [{
@@ -41,6 +42,22 @@ def plan_as_dict(plan, decisions: dict | None = None) -> dict:
         "estimands": plan.estimands.to_dict(),
         **(decisions or {}),
     }
+
+
+def missing_text(missing: dict) -> str:
+    """``3 of 120 rows removed for missing values (yield 2, dose 1)``; empty when none were."""
+    if not missing or not missing.get("rows_removed"):
+        return ""
+    counts = ", ".join(f"{column} {count:,}" for column, count in missing["by_column"].items())
+    return (f"{missing['rows_removed']:,} of {missing['rows_read']:,} rows removed for missing values "
+            f"(missing: drop; rows with a gap per column: {counts})")
+
+
+def missing_lines(missing: dict) -> list[str]:
+    """The ``check`` line of the ``missing`` policy when it is ``drop``."""
+    if not missing or missing.get("policy") != "drop":
+        return []
+    return [f"  missing  {missing_text(missing) or 'drop: no row had a missing value'}"]
 
 
 def _size_table(f) -> list[str]:
@@ -65,6 +82,7 @@ def describe(plan, decisions: list) -> str:
     extras = [f"{k} {getattr(outcome, k)!r}" for k in ("trials", "exposure", "known_sd") if getattr(outcome, k)]
     lines = [f"{spec.path}: {spec.title} ({spec.name})",
              f"  data     {spec.data_path} ({plan.n:,} rows used)",
+             *missing_lines(plan.missing),
              f"  outcome  {outcome.column}: {plan.family.name}, {plan.family.link} link"
              + (f" ({'; '.join(extras)})" if extras else ""),
              f"  terms    {', '.join(plan.terms)}",

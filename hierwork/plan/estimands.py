@@ -18,6 +18,7 @@ from __future__ import annotations
 from dataclasses import dataclass, field
 
 import numpy as np
+import pandas as pd
 
 from hierwork.declare.estimates import REFERENCE_WORDS
 from hierwork.errors import SpecError, did_you_mean
@@ -104,32 +105,50 @@ class Estimands:
                    contrasts=tuple((c["factor"], *c["groups"]) for c in data["contrasts"]))
 
 
-def estimands_of(spec, design, X: np.ndarray, factors, family) -> Estimands:
+def estimands_of(spec, design, frame, factors, family) -> Estimands:
     """Build and check the estimands of a spec against its design and groups.
+
+    Reference values are set per column, in the column's own units; the
+    reference row of the design is the design applied to them, so a
+    transformed term is the transform of its column's reference value and an
+    interaction term the product of its parts at theirs.
+
+    Parameters
+    ----------
+    spec : Spec
+    design : Design
+    frame : pandas.DataFrame
+        The fitted rows (numeric columns as numbers).
+    factors : sequence of FactorPlan
+    family : Family
 
     Raises
     ------
     SpecError
         A level that does not occur, a numeric predictor given a word other than
-        ``mean`` or ``zero``, a contrast naming a group that does not exist
-        (file, line and key of the spec).
+        ``mean`` or ``zero``, a reference value a transform cannot take, a
+        contrast naming a group that does not exist (file, line and key of the spec).
     """
     est = spec.estimates
     at = est["at"]
-    x, values = np.zeros(len(design.terms)), []
-    for k, term in enumerate(design.terms):
-        if term.kind == "intercept":
-            x[k] = 1.0
-        elif term.kind == "numeric":
-            ref = _numeric(at.get(term.column), X[:, k], term.column, "population", spec)
-            x[k] = ref.value
+    reference, values = {}, []
+    for column in design.columns:
+        if column in design.levels:
+            level = _level(at.get(column), design.levels[column], column, spec)
+            reference[column] = [level]
+            values.append(ReferenceValue(column, "population", "reference level" if column not in at else "level",
+                                         level))
+        else:
+            ref = _numeric(at.get(column), frame[column].to_numpy(dtype=float), column, "population", spec)
+            reference[column] = [ref.value]
             values.append(ref)
-    for column, levels in design.levels.items():
-        level = _level(at.get(column), levels, column, spec)
-        x[[k for k, t in enumerate(design.terms) if t.kind == "level" and t.column == column
-           and t.level == level]] = 1.0
-        values.append(ReferenceValue(column, "population", "reference level" if column not in at else "level",
-                                     level))
+    with np.errstate(divide="ignore", invalid="ignore"):
+        x = design.matrix(pd.DataFrame(reference, index=[0]))[0]
+    for t in design.terms:
+        if t.transform is not None and not np.isfinite(x[design.index(t.name)]):
+            raise SpecError(f"{t.name} is not defined at {t.column} = {number(reference[t.column][0])}",
+                            where=spec.where(f"estimates.at.{t.column}") if t.column in at else spec.where("predictors"),
+                            hint=f"set estimates.at.{t.column} to a value the transform accepts")
     w = {}
     for f in factors:
         refs = [_numeric(at.get(col), f.W[:, k], col, f.name, spec) for k, col in enumerate(f.predictors)]

@@ -80,6 +80,7 @@ class ModelPlan:
     notes: tuple = field(default_factory=tuple)
     data_sha256: str = ""
     estimands: object = None  # plan.estimands.Estimands: reference values, outcome scale, target, contrasts
+    missing: dict = field(default_factory=dict)  # Dataset.missing: policy, rows read and removed per column
 
     @property
     def terms(self) -> tuple:
@@ -141,7 +142,7 @@ def make_plan(spec, dataset) -> ModelPlan:
     resolved = priors.apply_user_priors(resolved, spec, design.level_terms())
     return ModelPlan(spec=spec, family=family, outcome=rows, design=design, X=X, factors=tuple(factor_plans),
                      priors=resolved, notes=design.notes, data_sha256=dataset.sha256,
-                     estimands=estimands_of(spec, design, X, factor_plans, family))
+                     estimands=estimands_of(spec, design, frame, factor_plans, family), missing=dict(dataset.missing))
 
 
 def _factor_plan(f, frame, labels, X, design, done, z, var) -> FactorPlan:

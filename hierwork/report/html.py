@@ -11,6 +11,7 @@ from __future__ import annotations
 
 import math
 
+from hierwork.plan.describe import missing_text
 from hierwork.report import diagnostic_figures as figures
 from hierwork.report.groups import estimates_section, pooling_section
 from hierwork.report.markup import Raw, el
@@ -53,6 +54,9 @@ def _verdict_section(run: Run, v: Verdict) -> Raw:
 
 def _facts(run: Run) -> list[str]:
     facts = [f"outcome: {run.family}"]
+    dropped = missing_text((run.plan or {}).get("missing") or {})
+    if dropped:
+        facts.append(dropped)
     if run.group_estimates is not None:
         sizes = run.group_estimates.groupby("factor", sort=False)["group"].nunique()
         facts += [f"{factor}: {count} groups" for factor, count in sizes.items()]

@@ -13,6 +13,7 @@ import re
 import pandas as pd
 
 from hierwork.formatting import number as fmt
+from hierwork.plan.describe import missing_text
 from hierwork.report.page import CAUTION
 from hierwork.report.standout import factor_sentences, standing_out
 from hierwork.report.verdict import verdict
@@ -104,6 +105,9 @@ def render_markdown(run: Run) -> str:
     v = verdict(run.diagnostics)
     view = View.of(run)
     lines = [f"# {md_escape(run.title)}", "", f"**{md_escape(v.headline)}**", ""]
+    dropped = missing_text((run.plan or {}).get("missing") or {})
+    if dropped:
+        lines += [md_escape(dropped[0].upper() + dropped[1:]) + ".", ""]
     if v.failed:
         lines += [f"- {md_escape(c.sentence())}" for c in v.failed] + [""]
     if v.advice:

@@ -98,6 +98,7 @@ def predict(run, new_data, seed: int | None = None, interval: float | None = Non
         if column not in design.levels:
             numeric(frame, column, "predictor", ref)
     design.check_levels(frame, ref.where)
+    design.check_values(frame, ref)
     X = design.matrix(frame)
     idata = run.posterior
     draws = draws_of(idata.posterior, factors, _parameters(family, idata.posterior))
