@@ -180,3 +180,66 @@ def test_predict_applies_the_terms_to_new_rows(fitted, reference, data):
     assert np.abs(out["outcome_mean"] - (fixed + blup))[known].max() < 0.2
     assert np.abs(out["outcome_mean"] - fixed)[~known].max() < 0.4  # Monte Carlo error of new effects (tau 2, 600 draws)
     assert (out["group_status"] == np.where(known, "known", "new")).all()
+
+
+# --- categorical group-level predictors (chick weights: Crowder and Hand 1990; tests/data/SOURCES.md)
+
+CHICKS = """
+format: hierwork/1
+name: chicks
+data: {data}
+outcome: {{column: weight_g}}
+predictors: [day]
+groups:
+  chick:
+    predictors: [{{column: diet, type: categorical{reference}}}]
+{extra}
+"""
+
+
+def chick_plan(tmp_path, reference="", extra=""):
+    from conftest import DATA
+
+    return hierwork.check(write_spec(tmp_path, CHICKS.format(data=DATA / "chickweight.csv", reference=reference,
+                                                             extra=extra))).plan
+
+
+def test_categorical_group_predictor_is_dummy_coded_per_group(tmp_path):
+    from conftest import DATA
+
+    plan = chick_plan(tmp_path)
+    f = plan.factor("chick")
+    assert f.predictors == ("diet=2", "diet=3", "diet=4")
+    table = pd.read_csv(DATA / "chickweight.csv").groupby("chick", sort=False)["diet"].first()
+    diet = table.loc[[int(g) for g in f.levels]].to_numpy()
+    np.testing.assert_array_equal(f.W, np.column_stack([diet == k for k in (2, 3, 4)]).astype(float))
+    np.testing.assert_array_equal(plan.estimands.w["chick"], [0.0, 0.0, 0.0])  # the reference level, diet 1
+    assert [p for p in plan.priors if p.startswith("chick.diet")] == ["chick.diet=2", "chick.diet=3", "chick.diet=4"]
+
+
+def test_group_predictor_reference_level_and_priors_on_the_column(tmp_path):
+    extra = "priors:\n  chick.diet: {normal: {mu: 0, sigma: 20}}\nestimates: {at: {diet: 2}}"
+    plan = chick_plan(tmp_path, reference=", reference: 3", extra=extra)
+    assert plan.factor("chick").predictors == ("diet=1", "diet=2", "diet=4")
+    assert all(plan.priors[f"chick.diet={k}"].params["sigma"] == 20 for k in (1, 2, 4))
+    np.testing.assert_array_equal(plan.estimands.w["chick"], [0.0, 1.0, 0.0])
+
+
+def test_predict_codes_a_new_groups_level_with_the_stored_design(tmp_path):
+    from types import SimpleNamespace
+
+    from hierwork.data.rows import RowRef
+    from hierwork.errors import DataError
+    from hierwork.plan.describe import plan_as_dict
+    from hierwork.results.predict import _new_group_values
+
+    stored = plan_as_dict(chick_plan(tmp_path))["factors"][0]
+    factor = SimpleNamespace(**stored)
+    new = pd.DataFrame({"chick": ["n1", "n1", "n2"], "diet": ["4", "4", "1"], "day": [0, 2, 0]})
+    ref = RowRef.of("new", 3, csv=False)
+    W = _new_group_values(new, factor, new["chick"].to_numpy(), ["n1", "n2"], ref)
+    np.testing.assert_array_equal(W, [[0, 0, 1], [0, 0, 0]])
+    with pytest.raises(DataError, match="level '7' not seen when fitting"):
+        _new_group_values(new.assign(diet=["7", "7", "1"]), factor, new["chick"].to_numpy(), ["n1", "n2"], ref)
+    with pytest.raises(DataError, match="not constant within new chick 'n1'"):
+        _new_group_values(new.assign(diet=["4", "2", "1"]), factor, new["chick"].to_numpy(), ["n1", "n2"], ref)

@@ -187,36 +187,40 @@ def _check_outcome(spec, frame, ref: RowRef) -> None:
 
 
 def _check_predictors(spec, frame, ref: RowRef) -> dict:
+    """Type every population and group-level predictor column; categorical ones -> their levels."""
     categorical = {}
-    for i, p in enumerate(spec.predictors):
+    entries = [(p, f"predictors[{i}]", "predictor") for i, p in enumerate(spec.predictors)]
+    entries += [(p, f"groups.{f.name}.predictors[{i}]", "group-level predictor")
+                for f in spec.factors for i, p in enumerate(f.predictor_settings)]
+    for p, key, role in entries:
         values = frame[p.column]
         is_numeric = pd.api.types.is_numeric_dtype(values) and not pd.api.types.is_bool_dtype(values)
         kind = p.type if p.type != "auto" else ("numeric" if is_numeric and p.reference is None else "categorical")
         if kind == "numeric":
             if p.reference is not None:
                 raise SpecError("'reference' applies to categorical predictors only",
-                                where=spec.where(f"predictors[{i}].reference"),
+                                where=spec.where(f"{key}.reference"),
                                 hint="remove it, or set type: categorical")
-            values = numeric(frame, p.column, "predictor", ref)
+            values = numeric(frame, p.column, role, ref)
             check_transform(values, p.transform, p.column, ref)
             if np.ptp(values) == 0:
-                raise DataError(f"predictor {p.column!r} has the same value ({values[0]:g}) in every row",
+                raise DataError(f"{role} {p.column!r} has the same value ({values[0]:g}) in every row",
                                 where=ref.where, hint="a predictor that never changes cannot be estimated; remove it")
             continue
         if p.transform is not None:
             raise SpecError(f"transform {p.transform} applies to numeric predictors; {p.column!r} is categorical",
-                            where=spec.where(f"predictors[{i}].transform"),
+                            where=spec.where(f"{key}.transform"),
                             hint="remove the transform, or set type: numeric if the column holds numbers")
         labels = values.astype(str).str.strip()
         frame[p.column] = labels
         levels = sorted(labels.unique())
         if len(levels) < 2:
-            raise DataError(f"categorical predictor {p.column!r} has a single level {levels[0]!r}",
+            raise DataError(f"categorical {role} {p.column!r} has a single level {levels[0]!r}",
                             where=ref.where, hint="a predictor that never changes cannot be estimated; remove it")
         reference = levels[0] if p.reference is None else str(p.reference)
         if reference not in levels:
             raise SpecError(f"reference level {reference!r} does not occur in column {p.column!r}",
-                            where=spec.where(f"predictors[{i}].reference"), hint=choices_hint(reference, levels))
+                            where=spec.where(f"{key}.reference"), hint=choices_hint(reference, levels))
         categorical[p.column] = [reference] + [lv for lv in levels if lv != reference]
     for f in spec.factors:
         for i, term in enumerate(f.varying):
@@ -227,8 +231,6 @@ def _check_predictors(spec, frame, ref: RowRef) -> dict:
                                 where=spec.where(f"groups.{f.name}.varying[{i}]"),
                                 hint="add a numeric 0/1 column for the contrast you want to vary")
             numeric(frame, term, "varying slope", ref)
-        for col in f.predictors:
-            numeric(frame, col, "group-level predictor", ref)
     return categorical
 
 
@@ -244,18 +246,31 @@ def _check_groups(spec, labels: dict, path) -> None:
 def _check_group_predictors(spec, frame, labels, path) -> None:
     for f in spec.factors:
         for col in f.predictors:
-            varying = varying_within(frame[col].to_numpy(dtype=float), labels[f.name])
+            varying = varying_within(frame[col], labels[f.name])
             if len(varying):
                 g, lo, hi = varying[0]
                 raise DataError(f"group-level predictor {col!r} is not constant within {f.name} {g!r} "
-                                f"(from {lo:g} to {hi:g}; {len(varying)} group(s) affected)",
+                                f"(from {shown_value(lo)} to {shown_value(hi)}; {len(varying)} group(s) affected)",
                                 where=f"{spec.where(f'groups.{f.name}.predictors')} -> {path}",
                                 hint="group-level predictors take one value per group; "
                                      "list a row-level column under 'predictors' instead")
 
 
-def varying_within(values: np.ndarray, labels) -> list:
-    """``(group, min, max)`` of every group whose values are not constant (relative tolerance 1e-9)."""
-    spread = pd.Series(values).groupby(pd.Series(labels, dtype=object), sort=False).agg(["min", "max"])
-    bad = (spread["max"] - spread["min"]).abs().to_numpy() > 1e-9 * np.maximum(1.0, spread["max"].abs().to_numpy())
+def varying_within(values, labels) -> list:
+    """``(group, min, max)`` of every group whose values are not constant.
+
+    Numbers within a relative tolerance of 1e-9 count as equal; labels (text) must be identical.
+    """
+    values = pd.Series(np.asarray(values))
+    spread = values.groupby(pd.Series(labels, dtype=object), sort=False).agg(["min", "max"])
+    if pd.api.types.is_numeric_dtype(values):
+        top = spread["max"].to_numpy(dtype=float)
+        bad = np.abs(top - spread["min"].to_numpy(dtype=float)) > 1e-9 * np.maximum(1.0, np.abs(top))
+    else:
+        bad = (spread["max"] != spread["min"]).to_numpy()
     return [(g, spread.loc[g, "min"], spread.loc[g, "max"]) for g in spread.index[bad]]
+
+
+def shown_value(value) -> str:
+    """A value in a message: numbers as `%g`, labels quoted."""
+    return f"{value:g}" if isinstance(value, (int, float, np.number)) else repr(value)

@@ -45,19 +45,8 @@ class Key:
     check: object = None
 
 
-FACTOR_KEYS = {
-    "column": Key("str", "Column holding the group labels (default: the factor's name).", None),
-    "varying": Key("list", "Terms that vary by group: 'intercept' and numeric predictors (slopes).",
-                   ["intercept"], item=Key("str", "a term")),
-    "predictors": Key("list", "Group-level predictors: numeric columns constant within each group.",
-                      [], item=Key("str", "a column")),
-    "within": Key("str", "Name of the factor this one is nested in (labels repeat across parents).", None),
-    "parameterisation": Key("choice", "How the group effects are sampled; 'auto' decides from the data.",
-                            "auto", choices=PARAMETERISATIONS),
-}
-
-PREDICTOR_KEYS = {
-    "column": Key("str", "Column name (required unless the entry is an 'interaction').", None),
+COLUMN_KEYS = {
+    "column": Key("str", "Column name."),
     "type": Key("choice", "How the column enters: numeric as given, or categorical (treatment coding).",
                 "auto", choices=("auto", "numeric", "categorical")),
     "reference": Key("str", "Reference level of a categorical predictor (default: the first in sort order).",
@@ -65,9 +54,27 @@ PREDICTOR_KEYS = {
     "transform": Key("choice", "Numeric predictors: enter as log(column) (values > 0), sqrt(column) "
                      "(values >= 0) or standardised(column) ((x - mean) / SD of the fitted data).", None,
                      choices=("log", "sqrt", "standardise")),
+}
+
+PREDICTOR_KEYS = {
+    **COLUMN_KEYS,
+    "column": Key("str", "Column name (required unless the entry is an 'interaction').", None),
     "interaction": Key("list", "Instead of 'column': two or more predictor columns (each listed in "
                        "'predictors') whose terms are multiplied, numeric or categorical; terms are "
                        "named a:b (engine_hours:sea_state=rough).", None, item=Key("str", "a predictor column")),
+}
+
+FACTOR_KEYS = {
+    "column": Key("str", "Column holding the group labels (default: the factor's name).", None),
+    "varying": Key("list", "Terms that vary by group: 'intercept' and numeric predictors (slopes).",
+                   ["intercept"], item=Key("str", "a term")),
+    "predictors": Key("list", "Group-level predictors: columns constant within each group, numeric "
+                      "or categorical (dummy-coded against a reference level, as population predictors).",
+                      [], item=Key("predictor", "a column name, or {column, type, reference, transform}",
+                                   fields=COLUMN_KEYS)),
+    "within": Key("str", "Name of the factor this one is nested in (labels repeat across parents).", None),
+    "parameterisation": Key("choice", "How the group effects are sampled; 'auto' decides from the data.",
+                            "auto", choices=PARAMETERISATIONS),
 }
 
 SPEC_KEYS = {

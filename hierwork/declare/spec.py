@@ -58,6 +58,7 @@ class Factor:
     predictors: tuple
     within: str | None
     parameterisation: str
+    predictor_settings: tuple = ()  # Predictor of each group-level column (type, reference, transform)
 
 
 @dataclass(frozen=True)
@@ -169,8 +170,9 @@ def spec_from_document(document: YamlDocument) -> Spec:
     predictors, interactions = _predictor_entries(values["predictors"], document)
     factors = tuple(
         Factor(name=name, column=f["column"] or name, varying=tuple(f["varying"]),
-               predictors=tuple(f["predictors"]), within=f["within"],
-               parameterisation=f["parameterisation"])
+               predictors=tuple(p["column"] for p in f["predictors"]), within=f["within"],
+               parameterisation=f["parameterisation"],
+               predictor_settings=tuple(Predictor(**p) for p in f["predictors"]))
         for name, f in values["groups"].items()
     )
     _check_factors(factors, predictors, document)

@@ -34,7 +34,8 @@ def plan_as_dict(plan, decisions: dict | None = None) -> dict:
         "design": plan.design.to_dict(),
         "factors": [{
             "name": f.name, "column": f.column, "groups": f.n_groups, "within": f.parent,
-            "varying": list(f.varying), "predictors": list(f.predictors), "sizes": group_sizes(f),
+            "varying": list(f.varying), "predictors": list(f.predictors),
+            "predictor_design": f.group_design.to_dict(), "sizes": group_sizes(f),
             "parameterisation": f.parameterisation, "reason": f.reason,
         } for f in plan.factors],
         "priors": {k: p.to_dict() for k, p in plan.priors.items()},

@@ -188,9 +188,10 @@ class Design:
         return cls(tuple(terms), levels, tuple(notes))
 
     @classmethod
-    def of_group_predictors(cls, columns, dataset) -> "Design":
-        """The design of a factor's group-level predictors: numeric columns and level indicators, no intercept."""
-        terms = [t for c in columns for t in column_terms(c, dataset.frame, dataset.categorical)]
+    def of_group_predictors(cls, predictors, dataset) -> "Design":
+        """The design of a factor's group-level predictors (``Predictor`` settings), no intercept."""
+        terms = [t for p in predictors for t in column_terms(p.column, dataset.frame, dataset.categorical, p.transform)]
+        columns = [p.column for p in predictors]
         return cls(tuple(terms), {c: tuple(dataset.categorical[c]) for c in columns if c in dataset.categorical})
 
     @property

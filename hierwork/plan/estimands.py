@@ -130,34 +130,47 @@ def estimands_of(spec, design, frame, factors, family) -> Estimands:
         contrast naming a group that does not exist (file, line and key of the spec).
     """
     est = spec.estimates
-    at = est["at"]
-    reference, values = {}, []
-    for column in design.columns:
-        if column in design.levels:
-            level = _level(at.get(column), design.levels[column], column, spec)
-            reference[column] = [level]
-            values.append(ReferenceValue(column, "population", "reference level" if column not in at else "level",
-                                         level))
-        else:
-            ref = _numeric(at.get(column), frame[column].to_numpy(dtype=float), column, "population", spec)
-            reference[column] = [ref.value]
-            values.append(ref)
-    with np.errstate(divide="ignore", invalid="ignore"):
-        x = design.matrix(pd.DataFrame(reference, index=[0]))[0]
-    for t in design.terms:
-        if t.transform is not None and not np.isfinite(x[design.index(t.name)]):
-            raise SpecError(f"{t.name} is not defined at {t.column} = {number(reference[t.column][0])}",
-                            where=spec.where(f"estimates.at.{t.column}") if t.column in at else spec.where("predictors"),
-                            hint=f"set estimates.at.{t.column} to a value the transform accepts")
+    values: list = []
+    x = _reference_row(design, lambda column: frame[column].to_numpy(dtype=float), "population", spec, values)
     w = {}
     for f in factors:
-        refs = [_numeric(at.get(col), f.W[:, k], col, f.name, spec) for k, col in enumerate(f.predictors)]
-        w[f.name] = np.array([r.value for r in refs], dtype=float)
-        values += refs
+        def per_group(column, f=f):
+            return pd.Series(frame[column].to_numpy(dtype=float)).groupby(f.index).first().to_numpy()
+
+        w[f.name] = _reference_row(f.group_design, per_group, f.name, spec, values)
     target = est["target"]
     return Estimands(x=x, w=w, values=tuple(values), scale=_scale(family, est), label=_label(spec, family, est),
                      kind=family.outcome_scale, target=dict(target) if target else None, rank_k=est["rank_k"],
                      contrasts=_contrasts(spec, factors))
+
+
+def _reference_row(design, column_values, role: str, spec, values: list) -> np.ndarray:
+    """The design's row at the reference values of its columns (appended to ``values``).
+
+    ``column_values(column)`` gives a numeric column's values the default
+    ``mean`` averages (the rows, or one value per group for group-level predictors).
+    """
+    at = spec.estimates["at"]
+    reference = {}
+    for column in design.columns:
+        if column in design.levels:
+            level = _level(at.get(column), design.levels[column], column, spec)
+            values.append(ReferenceValue(column, role, "reference level" if column not in at else "level", level))
+            reference[column] = [level]
+        else:
+            ref = _numeric(at.get(column), column_values(column), column, role, spec)
+            values.append(ref)
+            reference[column] = [ref.value]
+    if not design.terms:
+        return np.zeros(0)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        row = design.matrix(pd.DataFrame(reference, index=[0]))[0]
+    for t in design.terms:
+        if t.transform is not None and not np.isfinite(row[design.index(t.name)]):
+            raise SpecError(f"{t.name} is not defined at {t.column} = {number(reference[t.column][0])}",
+                            where=spec.where(f"estimates.at.{t.column}" if t.column in at else "predictors"),
+                            hint=f"set estimates.at.{t.column} to a value the transform accepts")
+    return row
 
 
 def _numeric(given, column_values, column: str, role: str, spec) -> ReferenceValue:

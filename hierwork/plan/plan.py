@@ -40,7 +40,10 @@ class FactorPlan:
     varying_cols : tuple of int
         Columns of the population design ``X`` that the varying terms multiply.
     predictors : tuple of str
-        Group-level predictors; their values per group are the rows of ``W`` (J, r).
+        Names of the group-level predictor terms (a numeric column's name, ``column=level``
+        for a categorical one's levels); their values per group are the rows of ``W`` (J, r).
+    group_design : Design
+        The terms of the group-level predictors (no intercept), stored in plan.json for ``predict``.
     parent : str or None
         Factor this one is nested in; ``parent_index`` (J,) maps groups to parent groups.
     parameterisation, reason : str
@@ -60,6 +63,7 @@ class FactorPlan:
     parent_index: np.ndarray | None
     parameterisation: str
     reason: str
+    group_design: Design = Design(())
 
     @property
     def n_groups(self) -> int:
@@ -130,7 +134,7 @@ def make_plan(spec, dataset) -> ModelPlan:
     z, var = family.working_response(rows)
     factor_plans = []
     for f in _parents_first(spec.factors):
-        factor_plans.append(_factor_plan(f, frame, dataset.labels[f.name], X, design, factor_plans, z, var))
+        factor_plans.append(_factor_plan(f, dataset, X, design, factor_plans, z, var))
 
     centre, spread = family.link_centre_spread(rows)
     term_stats = {name: (float(X[:, k].mean()), float(np.ptp(X[:, k])))
@@ -139,19 +143,21 @@ def make_plan(spec, dataset) -> ModelPlan:
                                       for k, col in enumerate(fp.predictors)}) for fp in factor_plans]
     resolved = priors.default_priors(family, rows, term_stats, centre, spread, factors)
     priors.check_lkj_keys(spec)
-    resolved = priors.apply_user_priors(resolved, spec, design.level_terms())
+    several = {**design.level_terms(), **{f"{fp.name}.{column}": [f"{fp.name}.{t}" for t in terms]
+                                         for fp in factor_plans for column, terms in fp.group_design.level_terms().items()}}
+    resolved = priors.apply_user_priors(resolved, spec, several)
     return ModelPlan(spec=spec, family=family, outcome=rows, design=design, X=X, factors=tuple(factor_plans),
                      priors=resolved, notes=design.notes, data_sha256=dataset.sha256,
                      estimands=estimands_of(spec, design, frame, factor_plans, family), missing=dict(dataset.missing))
 
 
-def _factor_plan(f, frame, labels, X, design, done, z, var) -> FactorPlan:
-    codes, uniques = pd.factorize(labels)
+def _factor_plan(f, dataset, X, design, done, z, var) -> FactorPlan:
+    codes, uniques = pd.factorize(dataset.labels[f.name])
     codes = codes.astype(np.int64)
     sizes = np.bincount(codes, minlength=len(uniques))
-    W = np.zeros((len(uniques), len(f.predictors)))
-    for k, col in enumerate(f.predictors):
-        W[:, k] = pd.Series(frame[col].to_numpy(dtype=float)).groupby(codes).first().to_numpy()
+    group_design = Design.of_group_predictors(f.predictor_settings, dataset)
+    W = pd.DataFrame(group_design.matrix(dataset.frame)).groupby(codes).first().to_numpy() if f.predictors \
+        else np.zeros((len(uniques), 0))
     parent_index = None
     if f.within is not None:
         parent = next(p for p in done if p.name == f.within)
@@ -163,8 +169,8 @@ def _factor_plan(f, frame, labels, X, design, done, z, var) -> FactorPlan:
     form, reason = parameterisation.choose(f.parameterisation, judged)
     return FactorPlan(name=f.name, column=f.column, levels=tuple(str(u) for u in uniques), index=codes,
                       sizes=sizes, varying=f.varying, varying_cols=tuple(design.index(t) for t in f.varying),
-                      predictors=f.predictors, W=W, parent=f.within, parent_index=parent_index,
-                      parameterisation=form, reason=reason)
+                      predictors=group_design.names, W=W, parent=f.within, parent_index=parent_index,
+                      parameterisation=form, reason=reason, group_design=group_design)
 
 
 def _parents_first(factors) -> list:

@@ -20,11 +20,11 @@ import numpy as np
 import pandas as pd
 
 from hierwork.data.labels import group_labels
-from hierwork.data.reading import is_csv, read_table, varying_within
+from hierwork.data.reading import is_csv, read_table, shown_value, varying_within
 from hierwork.data.rows import RowRef, blank, numeric
 from hierwork.errors import DataError, RunFolderError
 from hierwork.inference import seeds
-from hierwork.plan.design import Design
+from hierwork.plan.design import Design, Term
 from hierwork.plan.estimands import Estimands
 from hierwork.plan.families import get_family
 from hierwork.plan.families.base import OutcomeRows
@@ -163,7 +163,7 @@ def _required_columns(design: Design, factors, outcome: dict) -> dict:
         need.setdefault(column, "a population predictor")
     for f in factors:
         need.setdefault(f.column, f"the group labels of {f.name}")
-        for c in f.predictors:
+        for c in group_design_of(f).columns:
             need.setdefault(c, f"a group-level predictor of {f.name}")
     for key in ("trials", "exposure", "known_sd"):
         if outcome.get(key):
@@ -202,17 +202,28 @@ def _new_effects(posterior, factor, count: int, rng) -> np.ndarray:
     return np.einsum("dij,dkj->dki", chol, z)
 
 
+def group_design_of(factor) -> Design:
+    """A factor's group-level predictor design from plan.json (numeric columns in runs that predate it)."""
+    stored = getattr(factor, "predictor_design", None)
+    if stored is not None:
+        return Design.from_dict(stored)
+    return Design(tuple(Term(c, "numeric", c) for c in factor.predictors))
+
+
 def _new_group_values(frame, factor, labels, new_levels, ref: RowRef) -> np.ndarray:
-    """Group-level predictor values of the new groups (one value per group, checked)."""
-    out = np.zeros((len(new_levels), len(factor.predictors)))
-    for k, column in enumerate(factor.predictors):
-        values = numeric(frame, column, "group-level predictor", ref)
-        varying = [v for v in varying_within(values, labels) if v[0] in set(new_levels)]
+    """Group-level predictor values of the new groups (one value per group, checked), as rows of ``W``."""
+    design = group_design_of(factor)
+    for column in design.columns:
+        if column not in design.levels:
+            numeric(frame, column, "group-level predictor", ref)
+        varying = [v for v in varying_within(frame[column].to_numpy(), labels) if v[0] in set(new_levels)]
         if varying:
             g, lo, hi = varying[0]
             raise DataError(f"group-level predictor {column!r} is not constant within new "
-                            f"{factor.name} {g!r} (from {lo:g} to {hi:g})", where=ref.where,
+                            f"{factor.name} {g!r} (from {shown_value(lo)} to {shown_value(hi)})", where=ref.where,
                             hint="a group-level predictor takes one value per group")
-        first = pd.Series(values).groupby(pd.Series(labels, dtype=object), sort=False).first()
-        out[:, k] = first.loc[new_levels].to_numpy()
-    return out
+    rows = pd.Series(np.arange(len(frame))).groupby(pd.Series(labels, dtype=object), sort=False).first()
+    firsts = frame.iloc[rows.loc[new_levels].to_numpy()] if new_levels else frame.iloc[:0]
+    if len(firsts):
+        design.check_levels(firsts, ref.where)
+    return design.matrix(firsts) if len(firsts) else np.zeros((0, len(design.terms)))
