@@ -75,6 +75,9 @@ FACTOR_KEYS = {
     "within": Key("str", "Name of the factor this one is nested in (labels repeat across parents).", None),
     "parameterisation": Key("choice", "How the group effects are sampled; 'auto' decides from the data.",
                             "auto", choices=PARAMETERISATIONS),
+    "spread": Key("choice", "Residual SD: one for all rows ('fixed'), or each group its own ('varying'; "
+                  "normal and Student-t outcomes), partially pooled on the log scale.", "fixed",
+                  choices=("fixed", "varying")),
 }
 
 SPEC_KEYS = {

@@ -59,6 +59,7 @@ class Factor:
     within: str | None
     parameterisation: str
     predictor_settings: tuple = ()  # Predictor of each group-level column (type, reference, transform)
+    spread: str = "fixed"  # "varying": each group its own residual SD
 
 
 @dataclass(frozen=True)
@@ -172,10 +173,11 @@ def spec_from_document(document: YamlDocument) -> Spec:
         Factor(name=name, column=f["column"] or name, varying=tuple(f["varying"]),
                predictors=tuple(p["column"] for p in f["predictors"]), within=f["within"],
                parameterisation=f["parameterisation"],
-               predictor_settings=tuple(Predictor(**p) for p in f["predictors"]))
+               predictor_settings=tuple(Predictor(**p) for p in f["predictors"]), spread=f["spread"])
         for name, f in values["groups"].items()
     )
     _check_factors(factors, predictors, document)
+    _check_spread(factors, outcome, document)
     check_estimates(values, outcome, predictors, factors, document)
     priors = {k: PriorSpec(*next(iter(v.items()))) for k, v in values["priors"].items()}
     return Spec(values=values, document=document, data_path=data_path, outcome=outcome,
@@ -425,6 +427,24 @@ def _check_factors(factors, predictors, doc: YamlDocument) -> None:
         if f.column in pred_names:
             raise SpecError(f"column {f.column!r} is both a grouping factor and a predictor",
                             where=doc.where(f"groups.{f.name}"))
+
+
+def _check_spread(factors, outcome: Outcome, doc: YamlDocument) -> None:
+    """A varying spread needs a family with a residual SD to vary (not known per-row SDs)."""
+    from hierwork.plan.families.base import OutcomeRows
+
+    family = get_family(outcome.family)
+    for f in factors:
+        if f.spread != "varying":
+            continue
+        where = doc.where(f"groups.{f.name}.spread")
+        if "residual_sd" not in family.parameters(OutcomeRows(None)):
+            users = [n for n in FAMILY_NAMES if "residual_sd" in get_family(n).parameters(OutcomeRows(None))]
+            raise SpecError(f"family {family.name!r} has no residual SD to vary by {f.name}", where=where,
+                            hint=f"spread: varying is for {' / '.join(users)} outcomes; remove it")
+        if outcome.known_sd is not None:
+            raise SpecError("spread: varying cannot apply with known per-row SDs (outcome.known_sd)",
+                            where=where, hint="remove one of the two")
 
 
 def _show(value) -> str:

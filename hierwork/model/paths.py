@@ -39,6 +39,10 @@ def best_path(plan) -> tuple[str, str]:
     """The fastest exact path for a plan, and why: ``(path, reason)``."""
     if not plan.family.exact_normal:
         return "plain", f"{plan.family.name} outcome: the group effects have no closed-form marginal"
+    varying = [f.name for f in plan.factors if f.spread == "varying"]
+    if varying:
+        return "plain", (f"residual SD varies by {', '.join(varying)} (spread: varying): the exact fast paths "
+                         "need one residual SD for all rows, so the per-row model is taken")
     if not plan.factors:
         return "reduced", "no grouping factor: likelihood from sufficient statistics"
     if nesting_chain(plan) is not None:

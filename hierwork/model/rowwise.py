@@ -31,6 +31,7 @@ from hierwork.model import marginal
 from hierwork.model.blocks import (coords_of, factor_scales, family_extras, group_predictor_term,
                                    population_block, shift_matrix)
 from hierwork.model.cells import cell_index, cell_stats
+from hierwork.model.spread import row_residual_sd
 from hierwork.plan.plan import ModelPlan
 
 
@@ -55,6 +56,8 @@ def build_model(plan: ModelPlan, centre: bool = True, reduced: bool = False) -> 
     with pm.Model(coords=coords_of(plan)) as model:
         b, means = population_block(plan, centre)
         extras = family_extras(plan)
+        if "residual_sd" in extras:
+            extras["residual_sd"] = row_residual_sd(plan, extras["residual_sd"])
         anchored: set = set()
         parts = []  # (factor, per-group values in data units multiplying its varying columns, shift)
         for f in plan.factors:

@@ -35,7 +35,7 @@ def plan_as_dict(plan, decisions: dict | None = None) -> dict:
         "factors": [{
             "name": f.name, "column": f.column, "groups": f.n_groups, "within": f.parent,
             "varying": list(f.varying), "predictors": list(f.predictors),
-            "predictor_design": f.group_design.to_dict(), "sizes": group_sizes(f),
+            "predictor_design": f.group_design.to_dict(), "spread": f.spread, "sizes": group_sizes(f),
             "parameterisation": f.parameterisation, "reason": f.reason,
         } for f in plan.factors],
         "priors": {k: p.to_dict() for k, p in plan.priors.items()},
@@ -93,7 +93,8 @@ def describe(plan, decisions: list) -> str:
         nest = f", nested in {f.parent}" if f.parent else ""
         lines += ["", f"factor {f.name} (column {f.column!r}{nest}): rows per group", *_size_table(f),
                   f"    varies: {', '.join(f.varying)}"
-                  + (f"; group-level predictors: {', '.join(f.predictors)}" if f.predictors else "")]
+                  + (f"; group-level predictors: {', '.join(f.predictors)}" if f.predictors else "")
+                  + ("; residual SD: each group its own (spread: varying)" if f.spread == "varying" else "")]
     lines += ["", "priors (* = default, scaled to the data: rule in the README, derivation in plan.json)"]
     width = max(len(k) for k in plan.priors)
     for key, prior in plan.priors.items():

@@ -48,6 +48,8 @@ class FactorPlan:
         Factor this one is nested in; ``parent_index`` (J,) maps groups to parent groups.
     parameterisation, reason : str
         ``"centred"`` or ``"non_centred"`` and why.
+    spread : str
+        ``"varying"``: each group has its own residual SD (``F__spread``), else ``"fixed"``.
     """
 
     name: str
@@ -64,6 +66,7 @@ class FactorPlan:
     parameterisation: str
     reason: str
     group_design: Design = Design(())
+    spread: str = "fixed"
 
     @property
     def n_groups(self) -> int:
@@ -142,6 +145,8 @@ def make_plan(spec, dataset) -> ModelPlan:
     factors = [(fp.name, fp.varying, {col: (float(fp.W[:, k].mean()), float(np.ptp(fp.W[:, k])))
                                       for k, col in enumerate(fp.predictors)}) for fp in factor_plans]
     resolved = priors.default_priors(family, rows, term_stats, centre, spread, factors)
+    resolved.update({f"{fp.name}.spread.sd": priors.spread_sd_prior(fp.name) for fp in factor_plans
+                     if fp.spread == "varying"})
     priors.check_lkj_keys(spec)
     several = {**design.level_terms(), **{f"{fp.name}.{column}": [f"{fp.name}.{t}" for t in terms]
                                          for fp in factor_plans for column, terms in fp.group_design.level_terms().items()}}
@@ -170,7 +175,7 @@ def _factor_plan(f, dataset, X, design, done, z, var) -> FactorPlan:
     return FactorPlan(name=f.name, column=f.column, levels=tuple(str(u) for u in uniques), index=codes,
                       sizes=sizes, varying=f.varying, varying_cols=tuple(design.index(t) for t in f.varying),
                       predictors=group_design.names, W=W, parent=f.within, parent_index=parent_index,
-                      parameterisation=form, reason=reason, group_design=group_design)
+                      parameterisation=form, reason=reason, group_design=group_design, spread=f.spread)
 
 
 def _parents_first(factors) -> list:

@@ -26,6 +26,10 @@ the pooled share, log of the pooled rate). With ``M = 5`` spreads and
   ``S / R``, so the typical group's slope moves the linear predictor across
   the range by up to one spread;
 * **residual SD** (normal, Student-t): ``exponential`` with median ``S``;
+* **SD of the log residual SDs** of a factor with ``spread: varying``
+  (``F.spread.sd``): ``exponential`` with median 0.35, so a typical group's
+  residual SD is within a factor of about 1.4 of the population's (99% prior
+  probability that the SD is below 2.3, groups then differing by factors of up to 10);
 * **correlations** of varying terms: ``lkj(eta=2)``, which mildly favours
   weaker correlations;
 * family parameters: Student-t ``nu`` ``gamma(2, 0.1)`` (Juarez and Steel 2010,
@@ -162,6 +166,18 @@ def residual_sd_prior(spread: float) -> Prior:
     """``exponential`` with median one outcome spread."""
     return Prior("exponential", {"lam": _LN2 / spread}, True, "positive",
                  f"median {_n(spread)}, the outcome's SD")
+
+
+#: Median of the default prior of ``F.spread.sd`` (log scale: group SDs typically within x1.4).
+SPREAD_SD_MEDIAN = 0.35
+
+
+def spread_sd_prior(factor: str) -> Prior:
+    """``exponential`` with median :data:`SPREAD_SD_MEDIAN` for the SD of a factor's log residual SDs."""
+    return Prior("exponential", {"lam": _LN2 / SPREAD_SD_MEDIAN}, True, "positive",
+                 f"median {SPREAD_SD_MEDIAN:g} on the log scale: a typical {factor}'s residual SD is within a "
+                 f"factor of {math.exp(SPREAD_SD_MEDIAN):.2g} of the population's; 99% below "
+                 f"{SPREAD_SD_MEDIAN * math.log(100) / _LN2:.2g}")
 
 
 def correlation_prior() -> Prior:

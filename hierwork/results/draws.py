@@ -13,7 +13,7 @@ outcomes and means. Work is streamed over row chunks of about
 """
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 
 import numpy as np
 
@@ -28,7 +28,8 @@ class Draws:
     """Posterior (or prior) draws flattened over chains: ``D`` draws.
 
     ``effects[F]`` (D, J, q), ``gammas[F]`` (D, r), ``params`` the family's own
-    parameters (D,).
+    parameters (D,), ``spreads[F]`` (D, J) the log offsets of the groups' residual
+    SDs of factors with ``spread: varying`` (:mod:`hierwork.model.spread`).
     """
 
     b: np.ndarray
@@ -36,6 +37,7 @@ class Draws:
     gammas: dict
     params: dict
     shape: tuple  # (chains, draws per chain)
+    spreads: dict = field(default_factory=dict)
 
     @property
     def n(self) -> int:
@@ -47,11 +49,19 @@ class Draws:
             return self
         return Draws(self.b[index], {k: v[index] for k, v in self.effects.items()},
                      {k: v[index] for k, v in self.gammas.items()},
-                     {k: v[index] for k, v in self.params.items()}, (1, len(index)))
+                     {k: v[index] for k, v in self.params.items()}, (1, len(index)),
+                     {k: v[index] for k, v in self.spreads.items()})
 
-    def family_params(self) -> dict:
-        """The family parameters shaped ``(D, 1)`` to broadcast over rows."""
-        return {k: v[:, None] for k, v in self.params.items()}
+    def family_params(self, rows: "Rows | None" = None, sl: slice = slice(None)) -> dict:
+        """The family parameters shaped ``(D, 1)`` to broadcast over rows.
+
+        With ``rows`` and varying spreads, ``residual_sd`` is per row of ``rows[sl]``: ``(D, m)``.
+        """
+        params = {k: v[:, None] for k, v in self.params.items()}
+        if rows is not None and self.spreads and "residual_sd" in params:
+            offset = sum(self.spreads[name][:, index[sl]] for name, index, _, _ in rows.groups if name in self.spreads)
+            params["residual_sd"] = params["residual_sd"] * np.exp(offset)
+        return params
 
 
 def draws_of(group, factors, parameters) -> Draws:
@@ -75,7 +85,8 @@ def draws_of(group, factors, parameters) -> Draws:
                  effects={n: flat(f"{n}__effect") for n in names},
                  gammas={n: flat(f"{n}__gamma") for n, p in zip(names, preds) if p},
                  params={k: flat(k) for k in parameters if k in group},
-                 shape=(group.sizes["chain"], group.sizes["draw"]))
+                 shape=(group.sizes["chain"], group.sizes["draw"]),
+                 spreads={n: flat(f"{n}__spread_effect") for n in names if f"{n}__spread_effect" in group})
 
 
 @dataclass
@@ -135,8 +146,7 @@ def chunks(n_draws: int, n_rows: int):
 def pointwise_log_likelihood(draws: Draws, rows: Rows, family) -> np.ndarray:
     """Log density (D, n) of each observed row at each draw."""
     ll = np.empty((draws.n, rows.n))
-    params = draws.family_params()
     for sl in chunks(draws.n, rows.n):
         eta = linear_predictor(draws, rows, sl)
-        ll[:, sl] = family.log_density(rows.outcome.y[sl], eta, rows.outcome.rows(sl), params)
+        ll[:, sl] = family.log_density(rows.outcome.y[sl], eta, rows.outcome.rows(sl), draws.family_params(rows, sl))
     return ll

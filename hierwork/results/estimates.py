@@ -22,6 +22,7 @@ from hierwork.plan.plan import FactorPlan, ModelPlan
 from hierwork.results.outcome import factor_values, family_params, population_outcome_draws
 from hierwork.results.pooling import pooling_weights
 from hierwork.results.rankings import CONTRAST_COLUMNS, bounds, contrast_rows, rank_draws, rank_summary, standing
+from hierwork.results.spread import spread_rows
 
 #: Draws x groups of one factor handled at once.
 BLOCK_CELLS = 20_000_000
@@ -75,6 +76,7 @@ def group_estimates(idata, plan: ModelPlan, baseline: pd.DataFrame, interval: fl
     table = baseline.merge(partial, on=["factor", "group", "term"], how="left", validate="one_to_one")
     table["no_pooling_outcome"] = _baseline_outcome(idata, plan, table, "no_pooling")
     table["complete_pooling_outcome"] = _baseline_outcome(idata, plan, table, "complete_pooling")
+    table = pd.concat([table, spread_rows(idata, plan, interval)], ignore_index=True)
     return table[[c for c in GROUP_COLUMNS if c in table.columns]]
 
 
@@ -158,6 +160,8 @@ def parameter_draws(idata, plan: ModelPlan) -> dict:
                     out[f"{f.name}.corr[{f.varying[a]},{f.varying[c]}]"] = corr[..., a, c]
         for r, col in enumerate(f.predictors):
             out[f"{f.name}.{col}"] = post[f"{f.name}__gamma"].values[..., r]
+        if f.spread == "varying":
+            out[f"{f.name}.spread.sd"] = post[f"{f.name}__spread_sd"].values
     return out
 
 

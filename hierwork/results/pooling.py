@@ -58,10 +58,9 @@ def pooling_weights(idata, plan: ModelPlan) -> dict:
                key=len)
     draws, rows = draws.subset(keep), rows_of(plan)
     info = {f.name: np.zeros((draws.n, f.n_groups, len(f.varying), len(f.varying))) for f in plan.factors}
-    params = draws.family_params()
     for sl in chunks(draws.n, plan.n):
         eta = linear_predictor(draws, rows, sl)
-        w = np.broadcast_to(family.information(eta, plan.outcome.rows(sl), params), eta.shape)
+        w = np.broadcast_to(family.information(eta, plan.outcome.rows(sl), draws.family_params(rows, sl)), eta.shape)
         for f in plan.factors:
             Z = plan.X[sl][:, list(f.varying_cols)] - ref.x[list(f.varying_cols)]
             Z[:, 0] = 1.0
@@ -130,12 +129,18 @@ def pooling_factors(idata, plan: ModelPlan) -> pd.DataFrame:
     "Bayesian measures of explained variance and pooling in multilevel
     (hierarchical) models", Technometrics 48, 241-251, eq. 8). Near 0: groups
     keep their own estimates; near 1: they are pooled to the population value.
+    With ``spread: varying`` the row of term ``spread`` does the same for the
+    log offsets of the groups' residual SDs (``F__spread_effect``).
     """
     rows = []
     for f in plan.factors:
         effect = idata.posterior[f"{f.name}__effect"].values  # (c, d, J, q)
         flat = effect.reshape(-1, f.n_groups, len(f.varying))
-        for t, term in enumerate(f.varying):
+        terms = list(f.varying)
+        if f.spread == "varying":
+            offsets = idata.posterior[f"{f.name}__spread_effect"].values.reshape(-1, f.n_groups, 1)
+            flat, terms = np.concatenate([flat, offsets], axis=2), terms + ["spread"]
+        for t, term in enumerate(terms):
             e_var = float(np.mean(np.var(flat[:, :, t], axis=1, ddof=1)))
             var_e = float(np.var(flat[:, :, t].mean(axis=0), ddof=1))
             rows.append({"factor": f.name, "term": term, "n_groups": f.n_groups,

@@ -5,7 +5,8 @@ in ``plan.json``, so the columns are exactly those of the fit) and, per factor,
 its group's posterior effects when the group was fitted ("known"), or, for a
 group never seen ("new"), effects drawn for every posterior draw from the
 fitted population distribution ``N(0, S)`` with ``S = diag(sd) R diag(sd)``
-(``F__sd``, ``F__corr``); a new group's group-level predictors enter through
+(``F__sd``, ``F__corr``), and, with ``spread: varying``, a log residual-SD offset
+from ``N(0, F__spread_sd^2)``; a new group's group-level predictors enter through
 ``F__gamma`` as for fitted groups. Group labels follow the fit's rule
 (:mod:`hierwork.data.labels`), so plot 3 of a new farm is a new plot. The
 outcome is then drawn from the family for every draw (posterior predictive),
@@ -111,6 +112,10 @@ def predict(run, new_data, seed: int | None = None, interval: float | None = Non
         status[f.name] = np.where(index < len(known), "known", "new")
         draws.effects[f.name] = np.concatenate(
             [draws.effects[f.name], _new_effects(idata.posterior, f, len(new_levels), rng)], axis=1)
+        if f.name in draws.spreads:  # a new group's log residual SD offset: N(0, F__spread_sd^2) per draw
+            scale = np.asarray(idata.posterior[f"{f.name}__spread_sd"].values, dtype=float).reshape(-1, 1)
+            draws.spreads[f.name] = np.concatenate(
+                [draws.spreads[f.name], scale * rng.standard_normal((scale.shape[0], len(new_levels)))], axis=1)
         W = None
         if f.predictors:
             constants = getattr(idata, "constant_data", None)
@@ -142,9 +147,9 @@ def _parameters(family, posterior) -> list:
 def _summaries(draws, rows, family, estimands, rng, interval) -> dict:
     lo_q, hi_q = (1 - interval) / 2, 1 - (1 - interval) / 2
     out = {k: np.empty(rows.n) for k in COLUMNS}
-    params = draws.family_params()
     for sl in chunks(draws.n, rows.n):
         eta = linear_predictor(draws, rows, sl)
+        params = draws.family_params(rows, sl)
         rep = family.simulate(rng, eta, rows.outcome.rows(sl), params)
         out["pred_mean"][sl], out["pred_sd"][sl] = rep.mean(axis=0), rep.std(axis=0, ddof=1)
         out["pred_lower"][sl], out["pred_upper"][sl] = np.quantile(rep, [lo_q, hi_q], axis=0)

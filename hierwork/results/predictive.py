@@ -96,10 +96,10 @@ def posterior_predictive(draws: Draws, rows: Rows, family, y, rng: np.random.Gen
     ll = np.empty((D, n)) if keep_ll else None
     qs, levels = _quantile_levels(interval)
     summary = {"mean": np.empty(n), "sd": np.empty(n), "q": np.empty((len(qs), n))}
-    params = sub.family_params()
     for sl in chunks(sub.n, n):
         eta = linear_predictor(sub, rows, sl)
         part = rows.outcome.rows(sl)
+        params = sub.family_params(rows, sl)
         rep = family.simulate(rng, eta, part, params)
         replicated[..., sl] = rep[keep].reshape(replicated.shape[:2] + (-1,))
         summary["mean"][sl] = rep.mean(axis=0)
