@@ -13,6 +13,7 @@ import numpy as np
 from hierwork.formatting import number as fmt
 from hierwork.report.plotting import GREY, PALETTE, Plot, Scale, clip_text, finish, new_figure, styled
 from hierwork.results import funnel
+from hierwork.report.view import term_what
 
 __all__ = ["ranked_plot", "funnel_plot", "pooling_plot", "volume", "MAX_FOREST_GROUPS", "MAX_SCATTER_GROUPS"]
 
@@ -131,7 +132,7 @@ def ranked_plot(rows, factor: str, term: str, scale: Scale, interval: float, ban
     ax.scatter(x[below], y[below], s=34, marker="v", color=PALETTE["orange"], zorder=4,
                label="interval below the population value")
     scale.format_axis(axis)
-    what = "expected outcome" if term == "intercept" else f"change per unit of {term}"
+    what = term_what(term) or "expected outcome"
     fig.suptitle(clip_text(f"{factor}: {what}, sorted", 70), x=0.02, ha="left", weight="bold")
     fig.legend(loc="outside lower center", ncols=2, frameon=False)
     top, bottom = rows.iloc[0], rows.iloc[-1]
@@ -222,7 +223,7 @@ def pooling_plot(rows, factor: str, term: str, scale: Scale, interval: float, st
     """
     size_column, _ = volume(rows)
     rows = rows.sort_values([size_column, "outcome_mean"], kind="stable").reset_index(drop=True)
-    what = "expected outcome" if term == "intercept" else f"change per unit of {term}"
+    what = term_what(term) or "expected outcome"
     axis = scale.axis_label(term)
     complete = rows["complete_pooling_outcome"].dropna().unique()
     if len(rows) <= MAX_FOREST_GROUPS:

@@ -98,6 +98,8 @@ class Scale:
     def axis_label(self, term: str) -> str:
         if term == "intercept":
             return self.label + (" (%)" if self.percent else "")
+        if term == "spread":
+            return f"residual SD of {self.label}"
         unit = "percentage points" if self.percent else "change"
         return f"{unit} of {self.label} per unit of {term}"
 

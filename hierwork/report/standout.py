@@ -14,7 +14,7 @@ import pandas as pd
 from hierwork.formatting import probability
 from hierwork.report.markup import Raw, el
 from hierwork.report.page import banner, data_table
-from hierwork.report.view import View
+from hierwork.report.view import View, term_what
 
 __all__ = ["standout_section", "standing_out", "factor_sentences", "TARGET_PROBABILITY"]
 
@@ -44,7 +44,7 @@ def factor_sentences(view: View, factor: str, term: str) -> list:
     above, below, beyond = standing_out(view, factor, term)
     count = len(view.rows(factor, term))
     change = term != "intercept"
-    what = "" if term == "intercept" else f" (change per unit of {term})"
+    what = f" ({term_what(term)})" if term != "intercept" else ""
     level = view.level
     lines = []
     if len(above) or len(below):
@@ -96,7 +96,7 @@ def _contrasts(view: View) -> list:
         return []
     sentences = []
     for r in table.itertuples(index=False):
-        what = "" if r.term == "intercept" else f" (change per unit of {r.term})"
+        what = f" ({term_what(r.term)})" if r.term != "intercept" else ""
         sentences.append(el("li", f"{r.factor}{what}: {r.group_a} minus {r.group_b} = "
                                   f"{view.scale.text(r.difference, True)} ({view.level} interval "
                                   f"{view.scale.text(r.lower, True)} to {view.scale.text(r.upper, True)}); "

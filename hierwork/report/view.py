@@ -93,9 +93,16 @@ class View:
         summary = self.run.summary
         if summary is None:
             return None
-        names = ["outcome"] if term == "intercept" else [f"outcome_change.{term}", term]
+        names = {"intercept": ["outcome"], "spread": ["residual_sd"]}.get(term, [f"outcome_change.{term}", term])
         for name in names:
             row = summary[summary["parameter"] == name]
             if not row.empty:
                 return row.iloc[0][["mean", "lower", "upper"]].astype(float).to_dict()
         return None
+
+
+def term_what(term: str) -> str:
+    """What a term's rows of group_estimates.csv estimate, in words (empty for the intercept's expected outcome)."""
+    if term == "intercept":
+        return ""
+    return "residual SD" if term == "spread" else f"change per unit of {term}"
