@@ -137,3 +137,20 @@ def test_predict_uses_each_lines_own_spread(run, data):
         assert out["pred_sd"][row] == pytest.approx(spread[line], rel=0.2)
     assert out["pred_sd"][0] < out["pred_sd"][1]
     assert out["group_status"].tolist() == ["known", "known", "new"]
+
+
+@pytest.mark.slow
+def test_pointwise_log_likelihood_with_varying_spreads_matches_pymc(tmp_path):
+    """Per-row residual SDs of two nested factors (offsets add on the log scale), Student-t outcome.
+
+    Reference: PyMC's own logp of the observed variable at a few draws (a general-purpose library).
+    """
+    import predictive_kit as kit
+    from test_predictive import NESTED, _ours, _pymc_pointwise
+
+    text = NESTED.replace("FAMILY", "student_t").replace("parameterisation: non_centred}",
+                                                         "parameterisation: non_centred, spread: varying}")
+    plan = hierwork.check(kit.write(tmp_path, text)).plan
+    assert [f.spread for f in plan.factors] == ["varying", "varying"]
+    ref, idata = _pymc_pointwise(plan)
+    np.testing.assert_allclose(_ours(plan, idata), ref, rtol=0, atol=1e-8)
