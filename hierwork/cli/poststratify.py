@@ -1,8 +1,7 @@
 """``hierwork poststratify RUN POPULATION.csv [--by AREA]... [--count COLUMN] [--out FILE.csv]``."""
 from __future__ import annotations
 
-import sys
-from pathlib import Path
+from hierwork.cli.options import add_table_options, output_path, write_table
 
 
 def register(sub) -> None:
@@ -18,27 +17,17 @@ def register(sub) -> None:
                    help="a factor of the run or a column of the table to estimate per area (repeatable)")
     p.add_argument("--count", default="count", metavar="COLUMN",
                    help="column of population counts (default: count)")
-    p.add_argument("--out", metavar="FILE.csv", help="write the estimates here (default: standard output)")
-    p.add_argument("--seed", type=int, metavar="N", help="seed of unseen groups' effects (default: the run's seed)")
-    p.add_argument("--interval", type=float, metavar="P",
-                   help="probability of the central interval (default: the run's estimates.interval)")
+    add_table_options(p, "estimates")
     p.set_defaults(func=run)
 
 
 def run(args) -> int:
     import hierwork
-    from hierwork.errors import HierworkError
-    from hierwork.runfolder import write_atomic
 
-    out = Path(args.out) if args.out else None
-    if out is not None and not out.parent.is_dir():
-        raise HierworkError(f"folder {str(out.parent)!r} does not exist", where="--out",
-                            hint="create it first or choose another path")
+    out = output_path(args)
     table = hierwork.poststratify(args.run, args.population, by=args.by, count=args.count, seed=args.seed,
                                   interval=args.interval)
-    if out is None:
-        table.to_csv(sys.stdout, index=False)
+    if not write_table(table, out):
         return 0
-    write_atomic(out, table.to_csv(index=False))
     print(f"wrote {out}: {len(table) - 1} areas and the whole population")
     return 0

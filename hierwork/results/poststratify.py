@@ -18,18 +18,15 @@ draw per new group shared by all its cells, as in ``predict``.
 """
 from __future__ import annotations
 
-from pathlib import Path
-
 import numpy as np
 import pandas as pd
 from scipy import sparse
 
 from hierwork.data.labels import group_labels
-from hierwork.data.reading import is_csv, read_table
 from hierwork.data.rows import RowRef, blank
 from hierwork.errors import DataError, HierworkError
 from hierwork.results.draws import chunks, linear_predictor
-from hierwork.results.predict import new_rows
+from hierwork.results.predict import new_rows, read_rows
 from hierwork.runfolder import Run
 
 #: Columns of the output, one row per area and one for the whole population.
@@ -80,7 +77,8 @@ def poststratify(run, population, by=(), count: str = "count", seed: int | None 
     if interval is not None and not 0.5 <= interval < 1:
         raise HierworkError(f"interval must be at least 0.5 and below 1, got {interval:g}", where="--interval")
     interval = interval or run.interval
-    frame, ref = _read(population)
+    frame, ref = read_rows(population, "population table", "the population table has no rows",
+                           hint="give one row per population cell with its count")
     weights = _counts(frame, count, ref)
     factors = {f["name"]: f for f in run.plan["factors"]}
     cells = new_rows(run, frame, ref, seed, "poststratify", outcome_columns=False)
@@ -104,20 +102,6 @@ def poststratify(run, population, by=(), count: str = "count", seed: int | None 
         rows += [_row(name, level, counts[j], sums[k][:, j], interval) for j, level in enumerate(levels)]
     rows.append(_row(ALL, ALL, weights.sum(), total, interval))
     return pd.DataFrame(rows, columns=list(COLUMNS))
-
-
-def _read(population) -> tuple:
-    if isinstance(population, (str, Path)):
-        frame = read_table(Path(population))
-        ref = RowRef.of(str(population), len(frame), is_csv(Path(population)))
-    else:
-        frame = population.copy()
-        ref = RowRef.of("population table", len(frame), csv=False)
-    frame.columns = [str(c).strip() for c in frame.columns]
-    if frame.empty:
-        raise DataError("the population table has no rows", where=ref.where,
-                        hint="give one row per population cell with its count")
-    return frame.reset_index(drop=True), ref
 
 
 def _counts(frame: pd.DataFrame, column: str, ref: RowRef) -> np.ndarray:

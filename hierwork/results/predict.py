@@ -77,15 +77,7 @@ def predict(run, new_data, seed: int | None = None, interval: float | None = Non
     run = run if isinstance(run, Run) else Run.load(run)
     if interval is not None and not 0.5 <= interval < 1:
         raise HierworkError(f"interval must be at least 0.5 and below 1, got {interval:g}", where="interval")
-    if isinstance(new_data, (str, Path)):
-        frame = read_table(Path(new_data))
-        ref = RowRef.of(str(new_data), len(frame), is_csv(Path(new_data)))
-    else:
-        frame = new_data.copy()
-        ref = RowRef.of("new data", len(frame), csv=False)
-    frame.columns = [str(c).strip() for c in frame.columns]
-    if frame.empty:
-        raise DataError("no rows to predict", where=ref.where)
+    frame, ref = read_rows(new_data, "new data", "no rows to predict")
     interval = interval or run.interval
     cells = new_rows(run, frame, ref, seed, "predict")
     result = frame.copy()
@@ -96,6 +88,23 @@ def predict(run, new_data, seed: int | None = None, interval: float | None = Non
     result["group_status"] = (cells.status[names[0]] if len(names) == 1 else
                               [("; ".join(f"{n}={cells.status[n][i]}" for n in names)) for i in range(len(frame))])
     return result
+
+
+def read_rows(data, name: str, empty: str, hint: str | None = None) -> tuple:
+    """A table given as a DataFrame or a file (CSV, Parquet): its rows (columns stripped) and their references.
+
+    ``name`` stands for a DataFrame in messages; ``empty`` is the message when there are no rows.
+    """
+    if isinstance(data, (str, Path)):
+        frame = read_table(Path(data))
+        ref = RowRef.of(str(data), len(frame), is_csv(Path(data)))
+    else:
+        frame = data.copy()
+        ref = RowRef.of(name, len(frame), csv=False)
+    frame.columns = [str(c).strip() for c in frame.columns]
+    if frame.empty:
+        raise DataError(empty, where=ref.where, hint=hint)
+    return frame, ref
 
 
 @dataclass
