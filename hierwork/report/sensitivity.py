@@ -24,8 +24,12 @@ _EXPLAIN = ("Each parameter's posterior is moved without refitting by raising th
 
 def sensitivity_section(run: Run) -> Raw:
     """``<section id="sensitivity">``: the flagged parameters first, then the whole table."""
-    from hierwork.results.sensitivity import NONE, THRESHOLD, UNRELIABLE
+    from hierwork.results.sensitivity import CONFLICT, NONE, THRESHOLD, UNRELIABLE, WEAK_LIKELIHOOD
 
+    meaning = {WEAK_LIKELIHOOD: " Likelihood too weak: the data say little about it, so its posterior "
+                                "largely restates its prior.",
+               CONFLICT: " Prior-data conflict: prior and data pull apart; check the prior's centre and "
+                         "scale against what the data show."}
     table = run.sensitivity
     head = el("h2", "How much the priors matter")
     if table is None:
@@ -40,8 +44,8 @@ def sensitivity_section(run: Run) -> Raw:
     else:
         advice = ("Moved by the priors: " + "; ".join(f"{p} ({d})" for p, d in
                                                     zip(flagged["parameter"], flagged["diagnosis"]))
-                  + ". Report these with their priors, or refit with other priors to show the range; "
-                    "a prior-data conflict deserves a look at both the prior and the data.")
+                  + ". Report these with their priors, or refit with wider and narrower priors to show the range."
+                  + "".join(meaning[d] for d in dict.fromkeys(flagged["diagnosis"]) if d in meaning))
     return el("section", head, el("p", advice),
               el("p", _EXPLAIN.format(threshold=fmt(THRESHOLD)),
                  f"Pareto k of the reweighting: {fmt(table['pareto_k'].max())}.", class_="note"),
