@@ -93,15 +93,18 @@ def poststratify(run, population, by=(), count: str = "count", seed: int | None 
             * weights[sl]
         total += weighted.sum(axis=1)
         for k, (_, codes, levels) in enumerate(index):
-            members = sparse.csr_matrix((np.ones(len(weights[sl])), (np.arange(len(weights[sl])), codes[sl])),
-                                        shape=(len(weights[sl]), len(levels)))
-            sums[k] += np.asarray((members.T @ weighted.T).T)
+            m = weighted.shape[1]
+            members = sparse.csr_matrix((np.ones(m), (np.arange(m), codes[sl])), shape=(m, len(levels)))
+            sums[k] += np.asarray((members.T @ weighted.T).T)  # (D, areas): each area's weighted sum
     rows = []
     for k, (name, codes, levels) in enumerate(index):
         counts = np.bincount(codes, weights=weights, minlength=len(levels))
         rows += [_row(name, level, counts[j], sums[k][:, j], interval) for j, level in enumerate(levels)]
     rows.append(_row(ALL, ALL, weights.sum(), total, interval))
-    return pd.DataFrame(rows, columns=list(COLUMNS))
+    table = pd.DataFrame(rows, columns=list(COLUMNS))
+    if np.all(weights == np.round(weights)):
+        table["count"] = table["count"].round().astype(np.int64)  # whole units stay whole in the CSV
+    return table
 
 
 def _counts(frame: pd.DataFrame, column: str, ref: RowRef) -> np.ndarray:
@@ -147,6 +150,7 @@ def _codes(labels: np.ndarray) -> tuple:
 
 
 def _row(by: str, area: str, count: float, weighted_sum: np.ndarray, interval: float) -> tuple:
+    count = round(float(count), 9)  # a sum of decimal counts, without its binary round-off
     if count <= 0:
         return by, area, count, np.nan, np.nan, np.nan, np.nan
     theta = weighted_sum / count
