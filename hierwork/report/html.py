@@ -185,7 +185,7 @@ def render_html(run: Run, sink: FigureSink | None = None) -> str:
               estimates_section(view, _gate_breaches(v), stamp, sink),
               pooling_section(view, stamp, sink),
               _diagnostics_section(run, idata, v, stamp, sink),
-              sensitivity_section(run),
+              sensitivity_section(run, stamp),
               _fit_section(run, idata, stamp, sink),
               _provenance_section(run),
               el("section", el("h2", "Caution"), el("p", CAUTION), id="caution",

@@ -9,7 +9,7 @@ from __future__ import annotations
 
 from hierwork.formatting import number as fmt
 from hierwork.report.markup import Raw, el
-from hierwork.report.page import data_table
+from hierwork.report.page import banner, data_table
 from hierwork.runfolder import Run
 
 __all__ = ["sensitivity_section"]
@@ -22,8 +22,9 @@ _EXPLAIN = ("Each parameter's posterior is moved without refitting by raising th
             "posterior moves (a distance from 0 to 1) per doubling of the power; from {threshold} it counts. ")
 
 
-def sensitivity_section(run: Run) -> Raw:
-    """``<section id="sensitivity">``: the flagged parameters first, then the whole table."""
+def sensitivity_section(run: Run, stamp: str | None = None) -> Raw:
+    """``<section id="sensitivity">``: the flagged parameters first, then the whole table (marked with
+    ``stamp`` when the gate did not pass)."""
     from hierwork.results.sensitivity import CONFLICT, NONE, THRESHOLD, UNRELIABLE, WEAK_LIKELIHOOD
 
     meaning = {WEAK_LIKELIHOOD: " Likelihood too weak: the data say little about it, so its posterior "
@@ -46,8 +47,8 @@ def sensitivity_section(run: Run) -> Raw:
                                                     zip(flagged["parameter"], flagged["diagnosis"]))
                   + ". Report these with their priors, or refit with wider and narrower priors to show the range."
                   + "".join(meaning[d] for d in dict.fromkeys(flagged["diagnosis"]) if d in meaning))
-    return el("section", head, el("p", advice),
+    return el("section", head, banner(stamp), el("p", advice),
               el("p", _EXPLAIN.format(threshold=fmt(THRESHOLD)),
                  f"Pareto k of the reweighting: {fmt(table['pareto_k'].max())}.", class_="note"),
               data_table(table, _COLUMNS, "Prior and likelihood sensitivity", sortable=True),
-              id="sensitivity")
+              id="sensitivity", class_="not-for-use" if stamp else None)
