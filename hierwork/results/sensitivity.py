@@ -25,7 +25,7 @@ divided by its upper bound so that it lies in [0, 1], taken for both tails (the
 larger of the CDF and survival-function forms) and square-rooted (which makes
 it a metric). It does not depend on the parameter's units.
 
-Diagnosis (the same paper, section 4): a parameter whose posterior moves with
+Diagnosis (as the same paper proposes): a parameter whose posterior moves with
 the prior (``prior_sensitivity >= THRESHOLD``) either also moves with the
 likelihood (**prior-data conflict**: prior and data pull in different
 directions) or not (**likelihood too weak to overrule the prior**: the data say
@@ -58,7 +58,7 @@ UNRELIABLE = "not reliable: Pareto k too high, refit with scaled priors instead"
 
 def k_limit(n_draws: int) -> float:
     """Pareto k above which PSIS estimates are unreliable: ``min(1 - 1/log10(S), 0.7)``
-    (Vehtari, Simpson, Gelman, Yao and Gabry 2024)."""
+    (Vehtari, Simpson, Gelman, Yao and Gabry 2024; quoted from memory)."""
     return float(min(1.0 - 1.0 / np.log10(max(n_draws, 11)), 0.7))
 
 
