@@ -1,7 +1,8 @@
 """hierwork: declare, check, fit, gate and report Bayesian multilevel models.
 
 The public API mirrors the command line: ``load_spec`` and ``check`` (``hierwork
-check``), ``fit`` (``hierwork fit``), ``predict`` (``hierwork predict``), ``Run`` (a run
+check``), ``fit`` (``hierwork fit``), ``predict`` (``hierwork predict``), ``poststratify``
+(``hierwork poststratify``), ``Run`` (a run
 folder loaded back), ``write_report`` (``hierwork report``), ``compare_runs``
 (``hierwork compare``), ``batch_status`` (``hierwork status``),
 ``run_batch`` (``hierwork batch``), ``run_demo`` (``hierwork demo``) and ``spec_schema``
@@ -21,6 +22,7 @@ _API = {
     "CheckReport": "hierwork.pipeline", "check": "hierwork.pipeline", "fit": "hierwork.pipeline",
     "run_demo": "hierwork.pipeline",
     "predict": "hierwork.results.predict",
+    "poststratify": "hierwork.results.poststratify",
     "Run": "hierwork.runfolder",
     "compare_runs": "hierwork.report.compare", "write_report": "hierwork.report.publish",
     "batch_status": "hierwork.batch.progress",

@@ -23,6 +23,13 @@ Scenarios (all invented; see ``docs/demo.md``):
 Besides each data file, ``truth/<scenario>_groups.csv`` records the true
 group-level values used to simulate it, so that fits can be compared with the
 truth.
+
+``wheat_population.csv`` is the population the wheat plots sample: the
+hectares of wheat on each of the 30 farms by tillage and nitrogen rate, whose
+make-up differs from the plots' (large farms have many more hectares than
+sampled plots, and till less). ``truth/wheat_population.csv`` has the true
+hectare-weighted mean yield per region and for all farms, for checking
+``hierwork poststratify``.
 """
 from __future__ import annotations
 
@@ -180,6 +187,34 @@ def _depot_delays(rng: np.random.Generator) -> tuple[pd.DataFrame, pd.DataFrame]
     return data, truth
 
 
+def _wheat_population(rng: np.random.Generator, truth: pd.DataFrame) -> tuple[pd.DataFrame, pd.DataFrame]:
+    """Hectares per farm, tillage and nitrogen rate, and the true hectare-weighted mean yield."""
+    p = TRUE_PARAMETERS["wheat"]
+    cells = truth.merge(pd.DataFrame({"tillage": _TILLAGE}), how="cross").merge(
+        pd.DataFrame({"nitrogen_kg": _NITROGEN_LEVELS}), how="cross")
+    farm_area = dict(zip(truth["farm"], 25.0 * truth["n_plots"] * rng.uniform(0.5, 2.0, len(truth))))
+    # Large farms till less (the plots were sampled with tillage shares 0.5, 0.3, 0.2 everywhere).
+    large = cells["n_plots"].to_numpy() >= 20
+    share = np.select([cells["tillage"] == "conventional", cells["tillage"] == "reduced"],
+                      [np.where(large, 0.2, 0.6), np.where(large, 0.3, 0.3)], np.where(large, 0.5, 0.1))
+    nitrogen_share = rng.dirichlet(np.ones(len(_NITROGEN_LEVELS)), len(truth))  # per farm, over the rates
+    farm_pos = cells["farm"].map({f: i for i, f in enumerate(truth["farm"])}).to_numpy()
+    rate_pos = cells["nitrogen_kg"].map({n: j for j, n in enumerate(_NITROGEN_LEVELS)}).to_numpy()
+    hectares = cells["farm"].map(farm_area).to_numpy() * share * nitrogen_share[farm_pos, rate_pos]
+    tillage_effect = cells["tillage"].map({"conventional": 0.0, "reduced": p["tillage=reduced"],
+                                           "none": p["tillage=none"]}).to_numpy()
+    expected = cells["true_intercept"] + cells["true_nitrogen_slope"] * cells["nitrogen_kg"] + tillage_effect
+    population = pd.DataFrame({"region": cells["region"], "farm": cells["farm"], "tillage": cells["tillage"],
+                               "nitrogen_kg": cells["nitrogen_kg"], "hectares": np.round(hectares, 1)})
+    weighted = expected * population["hectares"]
+    by_region = weighted.groupby(population["region"]).sum() / population.groupby("region")["hectares"].sum()
+    true_means = pd.DataFrame({"by": ["region"] * len(by_region) + ["all"],
+                               "area": list(by_region.index) + ["all"],
+                               "true_mean_yield": list(by_region.round(4)) + [round(weighted.sum()
+                                                                                   / population["hectares"].sum(), 4)]})
+    return population, true_means
+
+
 _SCENARIOS = {"wheat": _wheat, "line_defects": _line_defects, "depot_delays": _depot_delays}
 
 
@@ -217,11 +252,16 @@ def make_demo_data(out_dir, seed: int = DEFAULT_SEED) -> dict[str, Path]:
     """
     out = Path(out_dir)
     (out / "truth").mkdir(parents=True, exist_ok=True)
-    streams = np.random.SeedSequence(seed).spawn(len(DEMO_DATASETS))
+    # One more stream than scenarios, for the wheat population (spawning more keeps the first ones).
+    streams = np.random.SeedSequence(seed).spawn(len(DEMO_DATASETS) + 1)
     written = {}
     for name, stream in zip(DEMO_DATASETS, streams):
         data, truth = _SCENARIOS[name](np.random.default_rng(stream))
         _write_csv_atomically(truth, out / "truth" / f"{name}_groups.csv")
         _write_csv_atomically(data, out / f"{name}.csv")
         written[name] = out / f"{name}.csv"
+        if name == "wheat":
+            population, true_means = _wheat_population(np.random.default_rng(streams[-1]), truth)
+            _write_csv_atomically(true_means, out / "truth" / "wheat_population.csv")
+            _write_csv_atomically(population, out / "wheat_population.csv")
     return written

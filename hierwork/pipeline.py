@@ -145,6 +145,7 @@ def fit(spec, out, force: bool = False, overrides: dict | None = None, progress:
     from hierwork.results.baselines import baselines
     from hierwork.results.estimates import contrasts, group_estimates, population_summary
     from hierwork.results.pooling import pooling_factors
+    from hierwork.results.sensitivity import sensitivity_table
 
     started = _dt.datetime.now(_dt.timezone.utc)
     t0 = time.perf_counter()
@@ -159,6 +160,7 @@ def fit(spec, out, force: bool = False, overrides: dict | None = None, progress:
         "group_estimates.csv": group_estimates(idata, plan, baselines(plan), spec.interval),
         "summary.csv": population_summary(idata, plan, spec.interval),
         "pooling.csv": pooling_factors(idata, plan),
+        "sensitivity.csv": sensitivity_table(idata, plan),
     }
     if plan.estimands.contrasts:
         contents["contrasts.csv"] = contrasts(idata, plan, spec.interval)

@@ -39,6 +39,7 @@ RUN_FILES = (
     RunFile("group_estimates.csv", True, "partial pooling beside both baselines, per factor, group and term"),
     RunFile("summary.csv", True, "population-level and variance parameters"),
     RunFile("pooling.csv", False, "pooling factor per factor and varying term"),
+    RunFile("sensitivity.csv", False, "how much each parameter moves when the priors or the likelihood are power-scaled"),
     RunFile("contrasts.csv", False, "the requested differences between two groups, on the outcome's scale"),
     RunFile("figures/", False, "every figure of the report as NAME.png and NAME.svg"),
     RunFile("diagnostics.json", True, "the gate: every check, its value, threshold and worst parameter"),
@@ -286,6 +287,10 @@ class Run:
     @property
     def pooling(self):
         return self._csv("pooling.csv")
+
+    @property
+    def sensitivity(self):
+        return self._csv("sensitivity.csv")
 
     @property
     def contrasts(self):

@@ -121,7 +121,7 @@ def test_figures_embed_svg_without_scripts_and_have_text_alternatives(passing):
 def test_sections_come_in_the_promised_order(passing):
     _, html = passing
     ids = [a.get("id") for t, a, _ in Page(html).elements if t == "section"]
-    assert ids == ["verdict", "standout", "estimates", "pooling", "diagnostics", "fit", "provenance",
+    assert ids == ["verdict", "standout", "estimates", "pooling", "diagnostics", "sensitivity", "fit", "provenance",
                    "caution"]
 
 

@@ -11,7 +11,7 @@ import importlib
 import sys
 
 # Command modules, in the order ``--help`` lists them.
-COMMANDS = ("check", "fit", "demo", "schema", "batch", "status", "report", "compare", "predict")
+COMMANDS = ("check", "fit", "demo", "schema", "batch", "status", "report", "compare", "predict", "poststratify")
 
 EXIT_OK, EXIT_BUG, EXIT_INPUT, EXIT_GATE = 0, 1, 2, 3
 

@@ -1,5 +1,8 @@
-"""Options shared by several commands (spec overrides)."""
+"""Options shared by several commands: spec overrides, and the output of the commands that write a table."""
 from __future__ import annotations
+
+import sys
+from pathlib import Path
 
 import yaml
 
@@ -33,3 +36,33 @@ def overrides_from(args) -> dict:
             value = raw
         out[key.strip()] = value
     return out
+
+
+def add_table_options(parser, what: str) -> None:
+    """``--out FILE.csv --seed N --interval P`` of the commands that write a table from a run folder."""
+    parser.add_argument("--out", metavar="FILE.csv", help=f"write the {what} here (default: standard output)")
+    parser.add_argument("--seed", type=int, metavar="N", help="seed of the draws (default: the run's seed)")
+    parser.add_argument("--interval", type=float, metavar="P",
+                        help="probability of the central interval (default: the run's estimates.interval)")
+
+
+def output_path(args) -> Path | None:
+    """``--out`` as a path, refused before any work if its folder does not exist."""
+    from hierwork.errors import HierworkError
+
+    out = Path(args.out) if args.out else None
+    if out is not None and not out.parent.is_dir():
+        raise HierworkError(f"folder {str(out.parent)!r} does not exist", where="--out",
+                            hint="create it first or choose another path")
+    return out
+
+
+def write_table(table, out: Path | None) -> bool:
+    """Write ``table`` as CSV to ``out`` atomically, or to standard output; whether a file was written."""
+    from hierwork.runfolder import write_atomic
+
+    if out is None:
+        table.to_csv(sys.stdout, index=False)
+        return False
+    write_atomic(out, table.to_csv(index=False))
+    return True

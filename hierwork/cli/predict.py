@@ -1,8 +1,7 @@
 """``hierwork predict RUN NEW.csv [--out FILE.csv]``: posterior predictive summaries for new rows."""
 from __future__ import annotations
 
-import sys
-from pathlib import Path
+from hierwork.cli.options import add_table_options, output_path, write_table
 
 
 def register(sub) -> None:
@@ -15,27 +14,17 @@ def register(sub) -> None:
                                    "scale), link_mean, link_lower, link_upper and group_status.")
     p.add_argument("run", metavar="RUN", help="run folder written by 'hierwork fit'")
     p.add_argument("new", metavar="NEW.csv", help="rows to predict (CSV or Parquet)")
-    p.add_argument("--out", metavar="FILE.csv", help="write the predictions here (default: standard output)")
-    p.add_argument("--seed", type=int, metavar="N", help="seed of the draws (default: the run's seed)")
-    p.add_argument("--interval", type=float, metavar="P",
-                   help="probability of the central interval (default: the run's estimates.interval)")
+    add_table_options(p, "predictions")
     p.set_defaults(func=run)
 
 
 def run(args) -> int:
     import hierwork
-    from hierwork.errors import HierworkError
-    from hierwork.runfolder import write_atomic
 
-    out = Path(args.out) if args.out else None
-    if out is not None and not out.parent.is_dir():
-        raise HierworkError(f"folder {str(out.parent)!r} does not exist", where="--out",
-                            hint="create it first or choose another path")
+    out = output_path(args)
     table = hierwork.predict(args.run, args.new, seed=args.seed, interval=args.interval)
-    if out is None:
-        table.to_csv(sys.stdout, index=False)
+    if not write_table(table, out):
         return 0
-    write_atomic(out, table.to_csv(index=False))
     status = table["group_status"].astype(str)
     print(f"wrote {out}: {len(table)} rows ({int(status.str.contains('new').sum())} with an unseen group)")
     return 0

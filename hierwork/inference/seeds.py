@@ -17,6 +17,7 @@ STREAMS = {
     "posterior_predictive": 101,
     "prior_predictive": 102,
     "predict": 103,
+    "poststratify": 171,         # effects of population cells in groups the fit never saw
 }
 
 

@@ -16,6 +16,7 @@ from hierwork.report import diagnostic_figures as figures
 from hierwork.report.groups import estimates_section, pooling_section
 from hierwork.report.markup import Raw, el
 from hierwork.report.page import CAUTION, STAMP, FigureSink, data_table, figure_element, page
+from hierwork.report.sensitivity import sensitivity_section
 from hierwork.report.standout import standout_section
 from hierwork.report.verdict import Verdict, verdict
 from hierwork.report.view import View
@@ -188,6 +189,7 @@ def render_html(run: Run, sink: FigureSink | None = None) -> str:
               estimates_section(view, _gate_breaches(v), stamp, sink),
               pooling_section(view, stamp, sink),
               _diagnostics_section(run, idata, v, stamp, sink),
+              sensitivity_section(run, stamp),
               _fit_section(run, idata, stamp, sink),
               _provenance_section(run),
               el("section", el("h2", "Caution"), el("p", CAUTION), id="caution",

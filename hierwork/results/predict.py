@@ -14,6 +14,7 @@ streamed over row chunks.
 """
 from __future__ import annotations
 
+from dataclasses import dataclass
 from pathlib import Path
 from types import SimpleNamespace
 
@@ -29,7 +30,7 @@ from hierwork.plan.design import Design, Term
 from hierwork.plan.estimands import Estimands
 from hierwork.plan.families import get_family
 from hierwork.plan.families.base import OutcomeRows
-from hierwork.results.draws import Rows, chunks, draws_of, linear_predictor
+from hierwork.results.draws import Draws, Rows, chunks, draws_of, linear_predictor
 from hierwork.runfolder import Run
 
 #: The columns ``predict`` adds to the input rows.
@@ -77,22 +78,65 @@ def predict(run, new_data, seed: int | None = None, interval: float | None = Non
     run = run if isinstance(run, Run) else Run.load(run)
     if interval is not None and not 0.5 <= interval < 1:
         raise HierworkError(f"interval must be at least 0.5 and below 1, got {interval:g}", where="interval")
-    if isinstance(new_data, (str, Path)):
-        frame = read_table(Path(new_data))
-        ref = RowRef.of(str(new_data), len(frame), is_csv(Path(new_data)))
+    frame, ref = read_rows(new_data, "new data", "no rows to predict")
+    interval = interval or run.interval
+    cells = new_rows(run, frame, ref, seed, "predict")
+    result = frame.copy()
+    for key, values in _summaries(cells.draws, cells.rows, cells.family, cells.estimands, cells.rng,
+                                  interval).items():
+        result[key] = values
+    names = list(cells.status)
+    result["group_status"] = (cells.status[names[0]] if len(names) == 1 else
+                              [("; ".join(f"{n}={cells.status[n][i]}" for n in names)) for i in range(len(frame))])
+    return result
+
+
+def read_rows(data, name: str, empty: str, hint: str | None = None) -> tuple:
+    """A table given as a DataFrame or a file (CSV, Parquet): its rows (columns stripped) and their references.
+
+    ``name`` stands for a DataFrame in messages; ``empty`` is the message when there are no rows.
+    """
+    if isinstance(data, (str, Path)):
+        frame = read_table(Path(data))
+        ref = RowRef.of(str(data), len(frame), is_csv(Path(data)))
     else:
-        frame = new_data.copy()
-        ref = RowRef.of("new data", len(frame), csv=False)
+        frame = data.copy()
+        ref = RowRef.of(name, len(frame), csv=False)
     frame.columns = [str(c).strip() for c in frame.columns]
     if frame.empty:
-        raise DataError("no rows to predict", where=ref.where)
+        raise DataError(empty, where=ref.where, hint=hint)
+    return frame, ref
+
+
+@dataclass
+class NewRows:
+    """Posterior draws extended to the groups of some new rows, and those rows (see the module docstring).
+
+    ``status[F]`` says per row whether its group of ``F`` was ``known`` or ``new``; ``rng`` is the
+    stream that drew the new groups' effects (``predict`` goes on drawing outcomes from it).
+    """
+
+    draws: Draws
+    rows: Rows
+    family: object
+    estimands: Estimands
+    status: dict
+    rng: np.random.Generator
+
+
+def new_rows(run: Run, frame: pd.DataFrame, ref: RowRef, seed: int | None, stream: str,
+             outcome_columns: bool = True) -> NewRows:
+    """Check rows against a run's design and groups and give the draws that evaluate them.
+
+    ``outcome_columns``: whether the family's trials / exposure / known-SD columns are
+    needed (draws of the outcome need them; its expected value does not).
+    """
     spec, plan = run.spec, run.plan
     family = get_family(plan["family"])
     factors = [SimpleNamespace(**f) for f in plan["factors"]]
     design = Design.from_dict(plan["design"])
-    interval = interval or (spec.get("estimates") or {}).get("interval", 0.94)
     seed = run.seed if seed is None else seed
-    outcome = spec["outcome"]
+    outcome = spec["outcome"] if outcome_columns else {}
     need = _required_columns(design, factors, outcome)
     _check_columns(frame, need, ref)
     for column in design.columns:
@@ -103,7 +147,7 @@ def predict(run, new_data, seed: int | None = None, interval: float | None = Non
     X = design.matrix(frame)
     idata = run.posterior
     draws = draws_of(idata.posterior, factors, _parameters(family, idata.posterior))
-    rng = seeds.rng(seed, "predict")
+    rng = seeds.rng(seed, stream)
     groups, status = [], {}
     labels = group_labels(frame, factors)
     for f in factors:
@@ -128,14 +172,8 @@ def predict(run, new_data, seed: int | None = None, interval: float | None = Non
     columns = {key: (numeric(frame, outcome[key], key, ref) if outcome.get(key) else None)
                for key in ("trials", "exposure", "known_sd")}
     rows = Rows(X, groups, OutcomeRows(None, **columns))
-    result = frame.copy()
     estimands = Estimands.from_dict(plan["estimands"]) if plan.get("estimands") else Estimands(np.ones(1))
-    for key, values in _summaries(draws, rows, family, estimands, rng, interval).items():
-        result[key] = values
-    names = list(status)
-    result["group_status"] = (status[names[0]] if len(names) == 1 else
-                              [("; ".join(f"{n}={status[n][i]}" for n in names)) for i in range(len(frame))])
-    return result
+    return NewRows(draws, rows, family, estimands, status, rng)
 
 
 def _parameters(family, posterior) -> list:
