@@ -72,10 +72,10 @@ SPEC_KEYS = {
     "data": Key("str", "CSV or Parquet file, relative to the spec file."),
     "outcome": Key("section", "The outcome and its family.", fields={
         "column": Key("str", "Outcome column."),
-        "family": Key("choice", "Likelihood family (link: identity, logit or log).", "normal",
+        "family": Key("choice", "Likelihood family (link: identity, logit or log; README, \"Families\").", "normal",
                       choices=FAMILY_NAMES),
-        "trials": Key("str", "binomial: column with the number of trials.", None),
-        "exposure": Key("str", "poisson / negative_binomial: column of exposures (log offset).", None),
+        "trials": Key("str", "binomial / beta_binomial: column with the number of trials.", None),
+        "exposure": Key("str", "poisson / negative_binomial / zero_inflated_poisson: column of exposures (log offset).", None),
         "known_sd": Key("str", "normal: column of known per-row standard errors (meta-analysis).", None),
     }),
     "predictors": Key("list", "Population-level terms shared by all groups.", [],

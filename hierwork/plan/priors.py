@@ -51,7 +51,8 @@ class Distribution:
     """One prior distribution of the table.
 
     ``supports`` lists what it can be the prior of: ``real``, ``positive``
-    (uniform only with ``lower >= 0``) or ``correlation``.
+    (uniform only with ``lower >= 0``), ``probability`` (uniform only within 0
+    and 1) or ``correlation``.
     """
 
     name: str
@@ -79,6 +80,7 @@ class Distribution:
             "half_cauchy": lambda: stats.halfcauchy(0, p["beta"]),
             "exponential": lambda: stats.expon(0, 1.0 / p["lam"]),
             "gamma": lambda: stats.gamma(p["alpha"], 0, 1.0 / p["beta"]),
+            "beta": lambda: stats.beta(p["alpha"], p["beta"]),
         }[self.name]()
         out = frozen.logpdf(x)
         return out + np.log(2.0) if self.name == "half_student_t" else out
@@ -88,12 +90,13 @@ DISTRIBUTIONS = {d.name: d for d in (
     Distribution("normal", "Normal", ("mu", "sigma"), ("sigma",), ("real",)),
     Distribution("student_t", "StudentT", ("nu", "mu", "sigma"), ("nu", "sigma"), ("real",)),
     Distribution("cauchy", "Cauchy", ("alpha", "beta"), ("beta",), ("real",)),
-    Distribution("uniform", "Uniform", ("lower", "upper"), (), ("real", "positive")),
+    Distribution("uniform", "Uniform", ("lower", "upper"), (), ("real", "positive", "probability")),
     Distribution("half_normal", "HalfNormal", ("sigma",), ("sigma",), ("positive",)),
     Distribution("half_student_t", "HalfStudentT", ("nu", "sigma"), ("nu", "sigma"), ("positive",)),
     Distribution("half_cauchy", "HalfCauchy", ("beta",), ("beta",), ("positive",)),
     Distribution("exponential", "Exponential", ("lam",), ("lam",), ("positive",)),
     Distribution("gamma", "Gamma", ("alpha", "beta"), ("alpha", "beta"), ("positive",)),
+    Distribution("beta", "Beta", ("alpha", "beta"), ("alpha", "beta"), ("probability",)),
     Distribution("lkj", "LKJCorr", ("eta",), ("eta",), ("correlation",)),
 )}
 
@@ -108,7 +111,7 @@ class Prior:
     dist: str
     params: dict
     default: bool
-    support: str  # "real", "positive" or "correlation"
+    support: str  # "real", "positive", "probability" or "correlation"
     rule: str = ""
 
     def text(self) -> str:
@@ -158,10 +161,9 @@ def group_sd_prior(spread: float, span: float | None, what: str) -> Prior:
                  + " across the term's range" * bool(span) + "; 99% below 6.6 times the median")
 
 
-def residual_sd_prior(spread: float) -> Prior:
-    """``exponential`` with median one outcome spread."""
-    return Prior("exponential", {"lam": _LN2 / spread}, True, "positive",
-                 f"median {_n(spread)}, the outcome's SD")
+def residual_sd_prior(spread: float, what: str = "the outcome's SD") -> Prior:
+    """``exponential`` with median one outcome spread (``what`` names it in the rule)."""
+    return Prior("exponential", {"lam": _LN2 / spread}, True, "positive", f"median {_n(spread)}, {what}")
 
 
 def correlation_prior() -> Prior:
@@ -212,6 +214,10 @@ def default_priors(family, rows, term_stats: dict, centre: float, spread: float,
     return out
 
 
+#: How a message names what a parameter is, by its support.
+_SUPPORT_WORDS = {"correlation": "a correlation matrix", "probability": "a probability"}
+
+
 def apply_user_priors(defaults: dict, spec, categorical_terms: dict) -> dict:
     """Replace defaults by the spec's priors, checking names and supports.
 
@@ -229,10 +235,13 @@ def apply_user_priors(defaults: dict, spec, categorical_terms: dict) -> dict:
             allowed = [d for d, dist in DISTRIBUTIONS.items() if support in dist.supports]
             if ps.dist not in allowed:
                 raise SpecError(f"{ps.dist!r} cannot be the prior of {key!r}, which is "
-                                f"{'a correlation matrix' if support == 'correlation' else support}",
+                                f"{_SUPPORT_WORDS.get(support, support)}",
                                 where=spec.where(f"priors.{key}"), hint=f"use one of: {', '.join(allowed)}")
             if support == "positive" and ps.dist == "uniform" and ps.params["lower"] < 0:
                 raise SpecError(f"uniform prior of {key!r} must have lower >= 0", where=spec.where(f"priors.{key}"))
+            if support == "probability" and ps.dist == "uniform" and not 0 <= ps.params["lower"] < ps.params["upper"] <= 1:
+                raise SpecError(f"uniform prior of {key!r} must lie within 0 and 1", where=spec.where(f"priors.{key}"),
+                                hint="write e.g. uniform: {lower: 0, upper: 0.5}")
             out[target] = Prior(ps.dist, dict(ps.params), False, support)
     return out
 
