@@ -1,4 +1,4 @@
-"""Invented demo data: three scenarios with known true group effects.
+"""Invented demo data: five scenarios with known true group effects.
 
 The data are simulated from multilevel models whose group effects come from a
 normal distribution with a moderate standard deviation, and whose groups are of
@@ -19,6 +19,15 @@ Scenarios (all invented; see ``docs/demo.md``):
 ``depot_delays``
     Late deliveries out of all deliveries per week at 40 delivery depots,
     with the number of rainy days in the week as a predictor.
+``depot_repairs``
+    Cost of each vehicle repair job at 30 maintenance depots (3 to 120 jobs),
+    by job type and vehicle age: positive and right-skewed, with an SD
+    proportional to the mean (gamma).
+``plot_birds``
+    Birds of one species counted on each survey visit to 40 farmland plots
+    (2 to 40 visits), with the minutes surveyed as the exposure and the wind as
+    a predictor; on a share of visits the species is absent from the plot
+    altogether, so there are more zeros than a Poisson count allows.
 
 Besides each data file, ``truth/<scenario>_groups.csv`` records the true
 group-level values used to simulate it, so that fits can be compared with the
@@ -37,7 +46,7 @@ __all__ = ["DEFAULT_SEED", "DEMO_DATASETS", "TRUE_PARAMETERS", "make_demo_data"]
 
 DEFAULT_SEED = 20261202
 
-DEMO_DATASETS = ("wheat", "line_defects", "depot_delays")
+DEMO_DATASETS = ("wheat", "line_defects", "depot_delays", "depot_repairs", "plot_birds")
 
 #: The population-level values the data are simulated from (data units).
 TRUE_PARAMETERS = {
@@ -64,6 +73,20 @@ TRUE_PARAMETERS = {
         "rain_days": 0.12,           # per rainy day in the week
         "depot.sd": 0.5,
     },
+    "depot_repairs": {
+        "intercept": np.log(180.0),  # log mean cost of a service job on a new vehicle
+        "job=brakes": 0.45,
+        "job=engine": 1.25,
+        "vehicle_age_years": 0.05,   # per year of vehicle age
+        "depot.sd": 0.3,
+        "cv": 0.45,                  # SD of a job's cost relative to its mean
+    },
+    "plot_birds": {
+        "intercept": np.log(0.25),   # log birds per survey minute in calm weather, when present
+        "wind_bft": -0.18,           # per Beaufort step
+        "plot.sd": 0.5,
+        "zero_inflation": 0.3,       # share of visits on which the species is absent from the plot
+    },
 }
 
 _REGIONS = ("north", "east", "south", "west", "central")
@@ -77,6 +100,13 @@ _LINE_SHIFTS = (2, 2, 3, 3, 4, 5, 6, 8, 10, 12, 15, 18, 22,
                 26, 30, 36, 42, 50, 60, 70, 80, 95, 110, 125, 140)
 _SHIFTS = ("day", "evening", "night")
 # Weeks recorded per depot: new depots have a few weeks, old ones a year.
+# Repair jobs per maintenance depot, and the job types (service is the reference).
+_DEPOT_JOBS = (3, 3, 4, 4, 5, 5, 6, 7, 8, 10, 12, 14, 16, 18, 20, 24, 28, 32, 36, 40,
+               45, 50, 55, 60, 70, 80, 90, 100, 110, 120)
+_JOBS = ("service", "brakes", "engine")
+# Survey visits per farmland plot: from a couple to a weekly series.
+_PLOT_VISITS = (2, 2, 2, 3, 3, 3, 4, 4, 5, 5, 6, 6, 7, 8, 8, 9, 10, 10, 11, 12,
+                13, 14, 15, 16, 17, 18, 19, 20, 21, 22, 24, 25, 26, 28, 30, 32, 34, 36, 38, 40)
 _DEPOT_WEEKS = (2, 2, 3, 3, 3, 4, 4, 5, 5, 6, 6, 7, 8, 8, 9, 10, 10, 12, 12, 14,
                 15, 16, 18, 20, 22, 24, 26, 26, 30, 32, 35, 38, 40, 42, 45, 48, 50, 52, 52, 52)
 
@@ -180,7 +210,58 @@ def _depot_delays(rng: np.random.Generator) -> tuple[pd.DataFrame, pd.DataFrame]
     return data, truth
 
 
-_SCENARIOS = {"wheat": _wheat, "line_defects": _line_defects, "depot_delays": _depot_delays}
+def _depot_repairs(rng: np.random.Generator) -> tuple[pd.DataFrame, pd.DataFrame]:
+    p = TRUE_PARAMETERS["depot_repairs"]
+    n_depots = len(_DEPOT_JOBS)
+    jobs = rng.permutation(_DEPOT_JOBS)
+    depots = [f"D{i + 1:02d}" for i in range(n_depots)]
+    depot_log_mean = p["intercept"] + rng.normal(0.0, p["depot.sd"], n_depots)
+    truth = pd.DataFrame({"depot": depots, "n_jobs": jobs, "true_log_mean": depot_log_mean.round(5)})
+
+    depot_idx = np.repeat(np.arange(n_depots), jobs)
+    n = depot_idx.size
+    job = rng.choice(_JOBS, n, p=[0.5, 0.3, 0.2])
+    age = rng.integers(0, 16, n)
+    log_mean = (depot_log_mean[depot_idx] + p["vehicle_age_years"] * age
+                + np.select([job == "brakes", job == "engine"], [p["job=brakes"], p["job=engine"]], 0.0))
+    shape = 1.0 / p["cv"] ** 2
+    cost = rng.gamma(shape, np.exp(log_mean) / shape)
+    data = pd.DataFrame({
+        "depot": np.array(depots)[depot_idx],
+        "job_no": np.concatenate([np.arange(1, k + 1) for k in jobs]),
+        "job": job,
+        "vehicle_age_years": age,
+        "cost": np.round(np.maximum(cost, 0.01), 2),
+    })
+    return data, truth
+
+
+def _plot_birds(rng: np.random.Generator) -> tuple[pd.DataFrame, pd.DataFrame]:
+    p = TRUE_PARAMETERS["plot_birds"]
+    n_plots = len(_PLOT_VISITS)
+    visits = rng.permutation(_PLOT_VISITS)
+    plots = [f"P{i + 1:02d}" for i in range(n_plots)]
+    plot_log_rate = p["intercept"] + rng.normal(0.0, p["plot.sd"], n_plots)
+    truth = pd.DataFrame({"plot": plots, "n_visits": visits, "true_log_rate": plot_log_rate.round(5)})
+
+    plot_idx = np.repeat(np.arange(n_plots), visits)
+    n = plot_idx.size
+    wind = rng.integers(0, 6, n)
+    minutes = rng.choice((10, 15, 20, 30), n)
+    rate = np.exp(plot_log_rate[plot_idx] + p["wind_bft"] * wind) * minutes
+    present = rng.random(n) >= p["zero_inflation"]
+    data = pd.DataFrame({
+        "plot": np.array(plots)[plot_idx],
+        "visit": np.concatenate([np.arange(1, k + 1) for k in visits]),
+        "wind_bft": wind,
+        "survey_minutes": minutes,
+        "birds": np.where(present, rng.poisson(rate), 0),
+    })
+    return data, truth
+
+
+_SCENARIOS = {"wheat": _wheat, "line_defects": _line_defects, "depot_delays": _depot_delays,
+              "depot_repairs": _depot_repairs, "plot_birds": _plot_birds}
 
 
 def _write_csv_atomically(frame: pd.DataFrame, path: Path) -> None:

@@ -118,8 +118,9 @@ SPEC_KEYS = {
                   "data), 'zero', a number, or a level of a categorical predictor (default: 'mean' for "
                   "numeric predictors, the reference level for categorical ones).", {},
                   item=Key("reference", "mean, zero, a number or a level")),
-        "rate_per": Key("float", "Poisson / negative binomial: rates are per this many units of exposure "
-                        "(e.g. 1000 for a rate per 1,000 hours).", 1.0, low=0, open_low=True),
+        "rate_per": Key("float", "Counts (poisson, negative_binomial, zero_inflated_poisson): rates are per "
+                        "this many units of exposure (e.g. 1000 for a rate per 1,000 hours).", 1.0, low=0,
+                        open_low=True),
         "target": Key("section", "A value on the outcome's scale to judge groups against: "
                       "p_beyond_target per group.", None, fields={
                           "value": Key("float", "The target (a probability, a rate per rate_per, or the "

@@ -7,10 +7,12 @@ correlation matrix) and its log density for checks after sampling.
 
 Default rule (``hierwork check`` marks defaults with ``*``; ``plan.json`` stores
 each default with the sentence that derived it). Let ``S`` be the outcome's
-reference spread on the linear predictor's scale (its SD for continuous
-outcomes; half a unit of log-odds or log rate for the logit and log links, i.e.
-odds or rates multiplied by 1.65) and ``m`` its centre there (mean, logit of
-the pooled share, log of the pooled rate). With ``M = 5`` spreads and
+reference spread on the linear predictor's scale (its SD for normal and
+Student-t outcomes; the SD of its logarithm for the positive amounts of gamma
+and lognormal, observed directly as the SD is; half a unit of log-odds or log
+rate for proportions and counts, i.e. odds or rates multiplied by 1.65) and
+``m`` its centre there (mean, logit of the pooled share, log of the pooled
+rate, log of the mean, mean of the logarithm). With ``M = 5`` spreads and
 ``z = 2.576`` (the 99% point of the normal):
 
 * **coefficient** of a term whose values span the observed range ``R`` (an
@@ -25,12 +27,18 @@ the pooled share, log of the pooled rate). With ``M = 5`` spreads and
   ``6.6 S``); **SD of a varying slope** of a term with range ``R``: median
   ``S / R``, so the typical group's slope moves the linear predictor across
   the range by up to one spread;
-* **residual SD** (normal, Student-t): ``exponential`` with median ``S``;
+* **residual SD** (normal, Student-t), and its log-scale counterparts lognormal
+  ``log_sd`` and gamma ``cv`` (for a gamma, the SD of log outcome is about its
+  coefficient of variation): ``exponential`` with median ``S``;
 * **correlations** of varying terms: ``lkj(eta=2)``, which mildly favours
   weaker correlations;
 * family parameters: Student-t ``nu`` ``gamma(2, 0.1)`` (Juarez and Steel 2010,
   J. Business and Economic Statistics 28, 541-551); negative-binomial
-  ``dispersion`` ``gamma(2, 0.1)``.
+  ``dispersion`` ``gamma(2, 0.1)``; beta-binomial ``concentration``
+  ``exponential`` with median the median number of trials ``n`` (a typical
+  row's binomial variance about doubled, ``1 + (n - 1) / (n + 1)``; 98% between
+  ``n / 70`` and ``6.6 n``); zero-inflated Poisson ``zero_inflation``
+  ``beta(1, 1)``.
 """
 from __future__ import annotations
 

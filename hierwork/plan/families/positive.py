@@ -23,7 +23,7 @@ class PositiveOutcome(Family):
         bad = rows.y <= 0
         if bad.any():
             fail(bad, "outcome", f"must be positive for family {self.name}",
-                 "these families model positive amounts (costs, durations); remove or correct the rows "
+                 f"{self.name} models positive amounts (costs, durations); correct or remove the rows "
                  "with 0 or less, or choose another family")
 
     @staticmethod
