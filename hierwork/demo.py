@@ -1,4 +1,4 @@
-"""Invented demo data: five scenarios with known true group effects.
+"""Invented demo data: six scenarios with known true group effects.
 
 The data are simulated from multilevel models whose group effects come from a
 normal distribution with a moderate standard deviation, and whose groups are of
@@ -23,6 +23,10 @@ Scenarios (all invented; see ``docs/demo.md``):
     Cost of each vehicle repair job at 30 maintenance depots (3 to 120 jobs),
     by job type and vehicle age: positive and right-skewed, with an SD
     proportional to the mean (gamma).
+``ward_infections``
+    Patients who acquired an infection out of those admitted, per ward and
+    month, at 36 hospital wards (2 to 36 months): the monthly proportions vary
+    more than a binomial allows (beta-binomial).
 ``plot_birds``
     Birds of one species counted on each survey visit to 40 farmland plots
     (2 to 40 visits), with the minutes surveyed as the exposure and the wind as
@@ -46,7 +50,7 @@ __all__ = ["DEFAULT_SEED", "DEMO_DATASETS", "TRUE_PARAMETERS", "make_demo_data"]
 
 DEFAULT_SEED = 20261202
 
-DEMO_DATASETS = ("wheat", "line_defects", "depot_delays", "depot_repairs", "plot_birds")
+DEMO_DATASETS = ("wheat", "line_defects", "depot_delays", "depot_repairs", "plot_birds", "ward_infections")
 
 #: The population-level values the data are simulated from (data units).
 TRUE_PARAMETERS = {
@@ -87,6 +91,13 @@ TRUE_PARAMETERS = {
         "plot.sd": 0.5,
         "zero_inflation": 0.3,       # share of visits on which the species is absent from the plot
     },
+    "ward_infections": {
+        "intercept": -3.2,           # log odds of an infection per admitted patient in a general ward
+        "ward_type=surgical": 0.4,
+        "ward_type=intensive": 1.1,
+        "ward.sd": 0.35,
+        "concentration": 60.0,       # beta-binomial: month-to-month spread of a ward's proportion
+    },
 }
 
 _REGIONS = ("north", "east", "south", "west", "central")
@@ -107,6 +118,10 @@ _JOBS = ("service", "brakes", "engine")
 # Survey visits per farmland plot: from a couple to a weekly series.
 _PLOT_VISITS = (2, 2, 2, 3, 3, 3, 4, 4, 5, 5, 6, 6, 7, 8, 8, 9, 10, 10, 11, 12,
                 13, 14, 15, 16, 17, 18, 19, 20, 21, 22, 24, 25, 26, 28, 30, 32, 34, 36, 38, 40)
+# Months on record per hospital ward, and the ward types (general is the reference).
+_WARD_MONTHS = (2, 2, 3, 3, 4, 4, 5, 6, 6, 7, 8, 9, 10, 11, 12, 12, 13, 14, 15, 16,
+                18, 20, 21, 22, 24, 24, 26, 28, 30, 30, 32, 33, 34, 35, 36, 36)
+_WARD_TYPES = ("general", "surgical", "intensive")
 _DEPOT_WEEKS = (2, 2, 3, 3, 3, 4, 4, 5, 5, 6, 6, 7, 8, 8, 9, 10, 10, 12, 12, 14,
                 15, 16, 18, 20, 22, 24, 26, 26, 30, 32, 35, 38, 40, 42, 45, 48, 50, 52, 52, 52)
 
@@ -260,8 +275,36 @@ def _plot_birds(rng: np.random.Generator) -> tuple[pd.DataFrame, pd.DataFrame]:
     return data, truth
 
 
+def _ward_infections(rng: np.random.Generator) -> tuple[pd.DataFrame, pd.DataFrame]:
+    p = TRUE_PARAMETERS["ward_infections"]
+    n_wards = len(_WARD_MONTHS)
+    months = rng.permutation(_WARD_MONTHS)
+    wards = [f"W{i + 1:02d}" for i in range(n_wards)]
+    ward_type = rng.choice(_WARD_TYPES, n_wards, p=[0.5, 0.35, 0.15])
+    ward_log_odds = (p["intercept"] + rng.normal(0.0, p["ward.sd"], n_wards)
+                     + np.select([ward_type == "surgical", ward_type == "intensive"],
+                                 [p["ward_type=surgical"], p["ward_type=intensive"]], 0.0))
+    typical_admissions = np.round(np.where(ward_type == "intensive", 1, 3) * rng.uniform(10, 30, n_wards))
+    truth = pd.DataFrame({"ward": wards, "ward_type": ward_type, "n_months": months,
+                          "true_log_odds": ward_log_odds.round(5)})
+
+    ward_idx = np.repeat(np.arange(n_wards), months)
+    admitted = np.maximum(rng.poisson(typical_admissions[ward_idx]), 5)
+    mean = 1.0 / (1.0 + np.exp(-ward_log_odds[ward_idx]))
+    phi = p["concentration"]
+    infected = rng.binomial(admitted, rng.beta(mean * phi, (1 - mean) * phi))  # beta-binomial
+    data = pd.DataFrame({
+        "ward": np.array(wards)[ward_idx],
+        "ward_type": ward_type[ward_idx],
+        "month": np.concatenate([np.arange(1, k + 1) for k in months]),
+        "admitted": admitted,
+        "infected": infected,
+    })
+    return data, truth
+
+
 _SCENARIOS = {"wheat": _wheat, "line_defects": _line_defects, "depot_delays": _depot_delays,
-              "depot_repairs": _depot_repairs, "plot_birds": _plot_birds}
+              "depot_repairs": _depot_repairs, "plot_birds": _plot_birds, "ward_infections": _ward_infections}
 
 
 def _write_csv_atomically(frame: pd.DataFrame, path: Path) -> None:
