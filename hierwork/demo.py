@@ -225,81 +225,63 @@ def _depot_delays(rng: np.random.Generator) -> tuple[pd.DataFrame, pd.DataFrame]
     return data, truth
 
 
+def _unequal_groups(rng: np.random.Generator, sizes, prefix: str, sd: float):
+    """Groups of the given sizes in random order: labels, sizes, normal offsets with SD ``sd``,
+    each row's group index and its number within the group (1, 2, ...)."""
+    sizes = rng.permutation(sizes)
+    labels = np.array([f"{prefix}{i + 1:02d}" for i in range(len(sizes))])
+    offsets = rng.normal(0.0, sd, len(sizes))
+    return labels, sizes, offsets, np.repeat(np.arange(len(sizes)), sizes), np.concatenate(
+        [np.arange(1, k + 1) for k in sizes])
+
+
 def _depot_repairs(rng: np.random.Generator) -> tuple[pd.DataFrame, pd.DataFrame]:
     p = TRUE_PARAMETERS["depot_repairs"]
-    n_depots = len(_DEPOT_JOBS)
-    jobs = rng.permutation(_DEPOT_JOBS)
-    depots = [f"D{i + 1:02d}" for i in range(n_depots)]
-    depot_log_mean = p["intercept"] + rng.normal(0.0, p["depot.sd"], n_depots)
+    depots, jobs, offsets, idx, job_no = _unequal_groups(rng, _DEPOT_JOBS, "D", p["depot.sd"])
+    depot_log_mean = p["intercept"] + offsets
     truth = pd.DataFrame({"depot": depots, "n_jobs": jobs, "true_log_mean": depot_log_mean.round(5)})
-
-    depot_idx = np.repeat(np.arange(n_depots), jobs)
-    n = depot_idx.size
+    n = idx.size
     job = rng.choice(_JOBS, n, p=[0.5, 0.3, 0.2])
     age = rng.integers(0, 16, n)
-    log_mean = (depot_log_mean[depot_idx] + p["vehicle_age_years"] * age
+    log_mean = (depot_log_mean[idx] + p["vehicle_age_years"] * age
                 + np.select([job == "brakes", job == "engine"], [p["job=brakes"], p["job=engine"]], 0.0))
     shape = 1.0 / p["cv"] ** 2
     cost = rng.gamma(shape, np.exp(log_mean) / shape)
-    data = pd.DataFrame({
-        "depot": np.array(depots)[depot_idx],
-        "job_no": np.concatenate([np.arange(1, k + 1) for k in jobs]),
-        "job": job,
-        "vehicle_age_years": age,
-        "cost": np.round(np.maximum(cost, 0.01), 2),
-    })
+    data = pd.DataFrame({"depot": depots[idx], "job_no": job_no, "job": job, "vehicle_age_years": age,
+                         "cost": np.round(np.maximum(cost, 0.01), 2)})
     return data, truth
 
 
 def _plot_birds(rng: np.random.Generator) -> tuple[pd.DataFrame, pd.DataFrame]:
     p = TRUE_PARAMETERS["plot_birds"]
-    n_plots = len(_PLOT_VISITS)
-    visits = rng.permutation(_PLOT_VISITS)
-    plots = [f"P{i + 1:02d}" for i in range(n_plots)]
-    plot_log_rate = p["intercept"] + rng.normal(0.0, p["plot.sd"], n_plots)
+    plots, visits, offsets, idx, visit = _unequal_groups(rng, _PLOT_VISITS, "P", p["plot.sd"])
+    plot_log_rate = p["intercept"] + offsets
     truth = pd.DataFrame({"plot": plots, "n_visits": visits, "true_log_rate": plot_log_rate.round(5)})
-
-    plot_idx = np.repeat(np.arange(n_plots), visits)
-    n = plot_idx.size
+    n = idx.size
     wind = rng.integers(0, 6, n)
     minutes = rng.choice((10, 15, 20, 30), n)
-    rate = np.exp(plot_log_rate[plot_idx] + p["wind_bft"] * wind) * minutes
+    rate = np.exp(plot_log_rate[idx] + p["wind_bft"] * wind) * minutes
     present = rng.random(n) >= p["zero_inflation"]
-    data = pd.DataFrame({
-        "plot": np.array(plots)[plot_idx],
-        "visit": np.concatenate([np.arange(1, k + 1) for k in visits]),
-        "wind_bft": wind,
-        "survey_minutes": minutes,
-        "birds": np.where(present, rng.poisson(rate), 0),
-    })
+    data = pd.DataFrame({"plot": plots[idx], "visit": visit, "wind_bft": wind, "survey_minutes": minutes,
+                         "birds": np.where(present, rng.poisson(rate), 0)})
     return data, truth
 
 
 def _ward_infections(rng: np.random.Generator) -> tuple[pd.DataFrame, pd.DataFrame]:
     p = TRUE_PARAMETERS["ward_infections"]
-    n_wards = len(_WARD_MONTHS)
-    months = rng.permutation(_WARD_MONTHS)
-    wards = [f"W{i + 1:02d}" for i in range(n_wards)]
-    ward_type = rng.choice(_WARD_TYPES, n_wards, p=[0.5, 0.35, 0.15])
-    ward_log_odds = (p["intercept"] + rng.normal(0.0, p["ward.sd"], n_wards)
-                     + np.select([ward_type == "surgical", ward_type == "intensive"],
-                                 [p["ward_type=surgical"], p["ward_type=intensive"]], 0.0))
-    typical_admissions = np.round(np.where(ward_type == "intensive", 1, 3) * rng.uniform(10, 30, n_wards))
+    wards, months, offsets, idx, month = _unequal_groups(rng, _WARD_MONTHS, "W", p["ward.sd"])
+    ward_type = rng.choice(_WARD_TYPES, len(wards), p=[0.5, 0.35, 0.15])
+    ward_log_odds = p["intercept"] + offsets + np.select(
+        [ward_type == "surgical", ward_type == "intensive"], [p["ward_type=surgical"], p["ward_type=intensive"]], 0.0)
+    typical_admissions = np.round(np.where(ward_type == "intensive", 1, 3) * rng.uniform(10, 30, len(wards)))
     truth = pd.DataFrame({"ward": wards, "ward_type": ward_type, "n_months": months,
                           "true_log_odds": ward_log_odds.round(5)})
-
-    ward_idx = np.repeat(np.arange(n_wards), months)
-    admitted = np.maximum(rng.poisson(typical_admissions[ward_idx]), 5)
-    mean = 1.0 / (1.0 + np.exp(-ward_log_odds[ward_idx]))
+    admitted = np.maximum(rng.poisson(typical_admissions[idx]), 5)
+    mean = 1.0 / (1.0 + np.exp(-ward_log_odds[idx]))
     phi = p["concentration"]
     infected = rng.binomial(admitted, rng.beta(mean * phi, (1 - mean) * phi))  # beta-binomial
-    data = pd.DataFrame({
-        "ward": np.array(wards)[ward_idx],
-        "ward_type": ward_type[ward_idx],
-        "month": np.concatenate([np.arange(1, k + 1) for k in months]),
-        "admitted": admitted,
-        "infected": infected,
-    })
+    data = pd.DataFrame({"ward": wards[idx], "ward_type": ward_type[idx], "month": month,
+                         "admitted": admitted, "infected": infected})
     return data, truth
 
 
