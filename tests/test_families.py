@@ -5,7 +5,8 @@ A family added to the registry is checked here with no other edit:
 * its log density, written from its formula, equals the same distribution in
   scipy.stats (its ``reference``), and the PyMC likelihood the model uses gives
   the same numbers (so the fit and everything computed after it agree);
-* its simulator reproduces the reference distribution's mean and variance;
+* its simulator reproduces the reference distribution's mean and variance, and
+  its mean on the outcome's scale is the reference's mean per trial or unit of exposure;
 * its Fisher information about the linear predictor (used by the pooling
   weight) equals the variance of the score, ``E[(d log p / d eta)^2]``
   (Fisher's identity, e.g. Casella and Berger 2002, Lemma 7.3.11), estimated by
@@ -77,6 +78,16 @@ def test_simulator_moments_match_reference(family):
     # Five standard errors of the sample mean and (roughly, via the fourth moment bound) of the variance.
     np.testing.assert_array_less(np.abs(sims.mean(axis=0) - mean), 5 * np.sqrt(var / draws) + 1e-12)
     assert np.all(np.abs(sims.var(axis=0) / var - 1) < 0.1)
+
+
+@pytest.mark.parametrize("family", FAMILIES, ids=IDS)
+def test_mean_is_the_reference_mean_per_unit(family):
+    # Results on the outcome's scale are Family.mean: the expected outcome per trial or per unit of
+    # exposure, which must be the scipy distribution's mean divided by the trials or the exposure.
+    rows, _, eta, params = _case(family, n=50)
+    volume = rows.trials if rows.trials is not None else rows.exposure if rows.exposure is not None else 1.0
+    np.testing.assert_allclose(family.mean(eta, params) * volume, family.reference(eta, rows, params).mean(),
+                               rtol=1e-10)
 
 
 @pytest.mark.parametrize("family", FAMILIES, ids=IDS)
