@@ -189,3 +189,19 @@ def test_small_fit_recovers_intercept_and_group_sd(family, tmp_path):
         row = summary.loc[name]
         assert row["lower"] <= truth <= row["upper"], (name, row.to_dict())
     assert summary.loc["intercept", "sd"] < prior_sd / 4
+
+
+@pytest.mark.parametrize("prior", [{"beta": {"alpha": 2, "beta": 5}}, {"uniform": {"lower": 0, "upper": 0.5}}])
+def test_a_probability_takes_a_beta_or_a_bounded_uniform_prior(prior, tmp_path):
+    # zero_inflation is a probability: the spec's prior replaces the default beta(1, 1), and its log
+    # density is scipy's (beta: scipy.stats.beta; uniform: 1 / 0.5 inside the bounds).
+    rng = np.random.default_rng(4)
+    pd.DataFrame({"site": np.repeat(["a", "b", "c"], 10), "y": rng.poisson(2, 30)}).to_csv(tmp_path / "d.csv",
+                                                                                       index=False)
+    spec = {"format": "hierwork/1", "name": "zi", "data": "d.csv", "priors": {"zero_inflation": prior},
+            "outcome": {"column": "y", "family": "zero_inflated_poisson"}, "groups": {"site": {"column": "site"}}}
+    (tmp_path / "spec.yaml").write_text(yaml.safe_dump(spec))
+    chosen = hierwork.check(tmp_path / "spec.yaml").plan.priors["zero_inflation"]
+    assert not chosen.default and chosen.dist == next(iter(prior))
+    expected = np.log(30 * 0.2 ** 1 * 0.8 ** 4) if chosen.dist == "beta" else np.log(2.0)  # B(2, 5) = 1/30
+    np.testing.assert_allclose(chosen.logpdf(0.2), expected, rtol=1e-12)
