@@ -1,4 +1,4 @@
-"""Invented demo data: three scenarios with known true group effects.
+"""Invented demo data: six scenarios with known true group effects.
 
 The data are simulated from multilevel models whose group effects come from a
 normal distribution with a moderate standard deviation, and whose groups are of
@@ -19,6 +19,19 @@ Scenarios (all invented; see ``docs/demo.md``):
 ``depot_delays``
     Late deliveries out of all deliveries per week at 40 delivery depots,
     with the number of rainy days in the week as a predictor.
+``depot_repairs``
+    Cost of each vehicle repair job at 30 maintenance depots (3 to 120 jobs),
+    by job type and vehicle age: positive and right-skewed, with an SD
+    proportional to the mean (gamma).
+``ward_infections``
+    Patients who acquired an infection out of those admitted, per ward and
+    month, at 36 hospital wards (2 to 36 months): the monthly proportions vary
+    more than a binomial allows (beta-binomial).
+``plot_birds``
+    Birds of one species counted on each survey visit to 40 farmland plots
+    (2 to 40 visits), with the minutes surveyed as the exposure and the wind as
+    a predictor; on a share of visits the species is absent from the plot
+    altogether, so there are more zeros than a Poisson count allows.
 
 Besides each data file, ``truth/<scenario>_groups.csv`` records the true
 group-level values used to simulate it, so that fits can be compared with the
@@ -44,7 +57,7 @@ __all__ = ["DEFAULT_SEED", "DEMO_DATASETS", "TRUE_PARAMETERS", "make_demo_data"]
 
 DEFAULT_SEED = 20261202
 
-DEMO_DATASETS = ("wheat", "line_defects", "depot_delays")
+DEMO_DATASETS = ("wheat", "line_defects", "depot_delays", "depot_repairs", "plot_birds", "ward_infections")
 
 #: The population-level values the data are simulated from (data units).
 TRUE_PARAMETERS = {
@@ -71,6 +84,27 @@ TRUE_PARAMETERS = {
         "rain_days": 0.12,           # per rainy day in the week
         "depot.sd": 0.5,
     },
+    "depot_repairs": {
+        "intercept": np.log(180.0),  # log mean cost of a service job on a new vehicle
+        "job=brakes": 0.45,
+        "job=engine": 1.25,
+        "vehicle_age_years": 0.05,   # per year of vehicle age
+        "depot.sd": 0.3,
+        "cv": 0.45,                  # SD of a job's cost relative to its mean
+    },
+    "plot_birds": {
+        "intercept": np.log(0.25),   # log birds per survey minute in calm weather, when present
+        "wind_bft": -0.18,           # per Beaufort step
+        "plot.sd": 0.5,
+        "zero_inflation": 0.3,       # share of visits on which the species is absent from the plot
+    },
+    "ward_infections": {
+        "intercept": -3.2,           # log odds of an infection per admitted patient in a general ward
+        "ward_type=surgical": 0.4,
+        "ward_type=intensive": 1.1,
+        "ward.sd": 0.35,
+        "concentration": 60.0,       # beta-binomial: month-to-month spread of a ward's proportion
+    },
 }
 
 _REGIONS = ("north", "east", "south", "west", "central")
@@ -84,6 +118,17 @@ _LINE_SHIFTS = (2, 2, 3, 3, 4, 5, 6, 8, 10, 12, 15, 18, 22,
                 26, 30, 36, 42, 50, 60, 70, 80, 95, 110, 125, 140)
 _SHIFTS = ("day", "evening", "night")
 # Weeks recorded per depot: new depots have a few weeks, old ones a year.
+# Repair jobs per maintenance depot, and the job types (service is the reference).
+_DEPOT_JOBS = (3, 3, 4, 4, 5, 5, 6, 7, 8, 10, 12, 14, 16, 18, 20, 24, 28, 32, 36, 40,
+               45, 50, 55, 60, 70, 80, 90, 100, 110, 120)
+_JOBS = ("service", "brakes", "engine")
+# Survey visits per farmland plot: from a couple to a weekly series.
+_PLOT_VISITS = (2, 2, 2, 3, 3, 3, 4, 4, 5, 5, 6, 6, 7, 8, 8, 9, 10, 10, 11, 12,
+                13, 14, 15, 16, 17, 18, 19, 20, 21, 22, 24, 25, 26, 28, 30, 32, 34, 36, 38, 40)
+# Months on record per hospital ward, and the ward types (general is the reference).
+_WARD_MONTHS = (2, 2, 3, 3, 4, 4, 5, 6, 6, 7, 8, 9, 10, 11, 12, 12, 13, 14, 15, 16,
+                18, 20, 21, 22, 24, 24, 26, 28, 30, 30, 32, 33, 34, 35, 36, 36)
+_WARD_TYPES = ("general", "surgical", "intensive")
 _DEPOT_WEEKS = (2, 2, 3, 3, 3, 4, 4, 5, 5, 6, 6, 7, 8, 8, 9, 10, 10, 12, 12, 14,
                 15, 16, 18, 20, 22, 24, 26, 26, 30, 32, 35, 38, 40, 42, 45, 48, 50, 52, 52, 52)
 
@@ -215,7 +260,68 @@ def _wheat_population(rng: np.random.Generator, truth: pd.DataFrame) -> tuple[pd
     return population, true_means
 
 
-_SCENARIOS = {"wheat": _wheat, "line_defects": _line_defects, "depot_delays": _depot_delays}
+def _unequal_groups(rng: np.random.Generator, sizes, prefix: str, sd: float):
+    """Groups of the given sizes in random order: labels, sizes, normal offsets with SD ``sd``,
+    each row's group index and its number within the group (1, 2, ...)."""
+    sizes = rng.permutation(sizes)
+    labels = np.array([f"{prefix}{i + 1:02d}" for i in range(len(sizes))])
+    offsets = rng.normal(0.0, sd, len(sizes))
+    return labels, sizes, offsets, np.repeat(np.arange(len(sizes)), sizes), np.concatenate(
+        [np.arange(1, k + 1) for k in sizes])
+
+
+def _depot_repairs(rng: np.random.Generator) -> tuple[pd.DataFrame, pd.DataFrame]:
+    p = TRUE_PARAMETERS["depot_repairs"]
+    depots, jobs, offsets, idx, job_no = _unequal_groups(rng, _DEPOT_JOBS, "D", p["depot.sd"])
+    depot_log_mean = p["intercept"] + offsets
+    truth = pd.DataFrame({"depot": depots, "n_jobs": jobs, "true_log_mean": depot_log_mean.round(5)})
+    n = idx.size
+    job = rng.choice(_JOBS, n, p=[0.5, 0.3, 0.2])
+    age = rng.integers(0, 16, n)
+    log_mean = (depot_log_mean[idx] + p["vehicle_age_years"] * age
+                + np.select([job == "brakes", job == "engine"], [p["job=brakes"], p["job=engine"]], 0.0))
+    shape = 1.0 / p["cv"] ** 2
+    cost = rng.gamma(shape, np.exp(log_mean) / shape)
+    data = pd.DataFrame({"depot": depots[idx], "job_no": job_no, "job": job, "vehicle_age_years": age,
+                         "cost": np.round(np.maximum(cost, 0.01), 2)})
+    return data, truth
+
+
+def _plot_birds(rng: np.random.Generator) -> tuple[pd.DataFrame, pd.DataFrame]:
+    p = TRUE_PARAMETERS["plot_birds"]
+    plots, visits, offsets, idx, visit = _unequal_groups(rng, _PLOT_VISITS, "P", p["plot.sd"])
+    plot_log_rate = p["intercept"] + offsets
+    truth = pd.DataFrame({"plot": plots, "n_visits": visits, "true_log_rate": plot_log_rate.round(5)})
+    n = idx.size
+    wind = rng.integers(0, 6, n)
+    minutes = rng.choice((10, 15, 20, 30), n)
+    rate = np.exp(plot_log_rate[idx] + p["wind_bft"] * wind) * minutes
+    present = rng.random(n) >= p["zero_inflation"]
+    data = pd.DataFrame({"plot": plots[idx], "visit": visit, "wind_bft": wind, "survey_minutes": minutes,
+                         "birds": np.where(present, rng.poisson(rate), 0)})
+    return data, truth
+
+
+def _ward_infections(rng: np.random.Generator) -> tuple[pd.DataFrame, pd.DataFrame]:
+    p = TRUE_PARAMETERS["ward_infections"]
+    wards, months, offsets, idx, month = _unequal_groups(rng, _WARD_MONTHS, "W", p["ward.sd"])
+    ward_type = rng.choice(_WARD_TYPES, len(wards), p=[0.5, 0.35, 0.15])
+    ward_log_odds = p["intercept"] + offsets + np.select(
+        [ward_type == "surgical", ward_type == "intensive"], [p["ward_type=surgical"], p["ward_type=intensive"]], 0.0)
+    typical_admissions = np.round(np.where(ward_type == "intensive", 1, 3) * rng.uniform(10, 30, len(wards)))
+    truth = pd.DataFrame({"ward": wards, "ward_type": ward_type, "n_months": months,
+                          "true_log_odds": ward_log_odds.round(5)})
+    admitted = np.maximum(rng.poisson(typical_admissions[idx]), 5)
+    mean = 1.0 / (1.0 + np.exp(-ward_log_odds[idx]))
+    phi = p["concentration"]
+    infected = rng.binomial(admitted, rng.beta(mean * phi, (1 - mean) * phi))  # beta-binomial
+    data = pd.DataFrame({"ward": wards[idx], "ward_type": ward_type[idx], "month": month,
+                         "admitted": admitted, "infected": infected})
+    return data, truth
+
+
+_SCENARIOS = {"wheat": _wheat, "line_defects": _line_defects, "depot_delays": _depot_delays,
+              "depot_repairs": _depot_repairs, "plot_birds": _plot_birds, "ward_infections": _ward_infections}
 
 
 def _write_csv_atomically(frame: pd.DataFrame, path: Path) -> None:

@@ -24,7 +24,8 @@ from hierwork.demo import DEFAULT_SEED, DEMO_DATASETS, TRUE_PARAMETERS, make_dem
 
 SPEC_DIR = Path(__file__).resolve().parents[1] / "model_specs"
 DEMO_SPECS = ("wheat.yaml", "wheat_slopes.yaml", "line_defects.yaml",
-              "line_defects_nb.yaml", "depot_delays.yaml")
+              "line_defects_nb.yaml", "depot_delays.yaml", "depot_repairs.yaml", "plot_birds.yaml",
+              "ward_infections.yaml")
 # Seeds for the checks that must hold on average, not only for the demo's seed.
 OTHER_SEEDS = (1, 2, 3, 4, 5, 6)
 
@@ -118,6 +119,66 @@ def test_depot_delays_structure(demo):
     assert ((data["late"] >= 0) & (data["late"] <= data["deliveries"])).all()
     assert data["rain_days"].between(0, 7).all()
     assert truth.set_index("depot")["n_weeks"].equals(sizes.rename("n_weeks").rename_axis("depot"))
+
+
+def test_depot_repairs_structure(demo):
+    data, truth = demo("depot_repairs")
+    sizes = data.groupby("depot").size()
+    assert sizes.size == 30 and sizes.min() <= 3 and sizes.max() >= 100
+    assert (data["cost"] > 0).all() and data.notna().all().all()
+    assert set(data["job"]) == {"service", "brakes", "engine"}
+    assert data["vehicle_age_years"].between(0, 15).all()
+    assert truth.set_index("depot")["n_jobs"].equals(sizes.rename("n_jobs").rename_axis("depot"))
+
+
+def test_repair_costs_spread_with_their_mean(demo):
+    # A gamma's SD is proportional to its mean: within job types, the coefficient of variation
+    # stays near the stated one while the SD grows with the mean (engine jobs cost most).
+    data, _ = demo("depot_repairs")
+    by_job = data.groupby("job")["cost"].agg(["mean", "std"])
+    assert by_job["mean"].idxmax() == "engine" and by_job["std"].idxmax() == "engine"
+    cv = TRUE_PARAMETERS["depot_repairs"]["cv"]
+    # Depot and age differences add to the spread within a job type: the CV is a little above the stated one.
+    assert ((by_job["std"] / by_job["mean"]).between(cv, 1.6 * cv)).all(), by_job
+
+
+def test_plot_birds_structure(demo):
+    data, truth = demo("plot_birds")
+    sizes = data.groupby("plot").size()
+    assert sizes.size == 40 and sizes.min() <= 2 and sizes.max() >= 40
+    assert data["birds"].dtype.kind == "i" and (data["birds"] >= 0).all()
+    assert (data["survey_minutes"] > 0).all() and data["wind_bft"].between(0, 5).all()
+    assert truth.set_index("plot")["n_visits"].equals(sizes.rename("n_visits").rename_axis("plot"))
+
+
+def test_plot_birds_have_excess_zeros(demo):
+    # More zero counts than a Poisson GLM with the same terms expects (sum of exp(-mu) over rows,
+    # the expected number of zeros; cf. Lambert 1992, Technometrics 34, 1-14), so the zero-inflated
+    # family earns its place.
+    data, _ = demo("plot_birds")
+    fit = smf.glm("birds ~ 0 + C(plot) + wind_bft", data, family=sm.families.Poisson(),
+                  offset=np.log(data["survey_minutes"])).fit()
+    expected_zeros = float(np.exp(-fit.fittedvalues).sum())
+    assert (data["birds"] == 0).sum() > 1.5 * expected_zeros
+
+
+def test_ward_infections_structure(demo):
+    data, truth = demo("ward_infections")
+    sizes = data.groupby("ward").size()
+    assert sizes.size == 36 and sizes.min() <= 2 and sizes.max() >= 36
+    assert (data["admitted"] > 0).all()
+    assert ((data["infected"] >= 0) & (data["infected"] <= data["admitted"])).all()
+    assert (data.groupby("ward")["ward_type"].nunique() == 1).all()
+    assert data["ward_type"].value_counts().idxmax() == "general"       # the reference level
+    assert truth.set_index("ward")["n_months"].equals(sizes.rename("n_months").rename_axis("ward"))
+
+
+def test_ward_infections_are_over_dispersed(demo):
+    # Binomial Pearson chi-square per residual degree of freedom clearly above 1 (McCullagh and
+    # Nelder 1989, §4.5): month-to-month proportions vary more than a binomial allows.
+    data, _ = demo("ward_infections")
+    fit = smf.glm("infected + I(admitted - infected) ~ 0 + C(ward)", data, family=sm.families.Binomial()).fit()
+    assert fit.pearson_chi2 / fit.df_resid > 1.5
 
 
 @pytest.mark.parametrize("spec_file", DEMO_SPECS)
@@ -225,8 +286,44 @@ def _depot_errors(demo, seed):
             _rmse(own, truth["true_log_odds"], small))
 
 
-@pytest.mark.parametrize("errors", [_wheat_errors, _line_errors, _depot_errors],
-                         ids=["wheat", "line_defects", "depot_delays"])
+def _repair_errors(demo, seed):
+    """Small-depot RMSE of shrunken and separate log mean costs (gamma GLM with log link)."""
+    data, truth = demo("depot_repairs", seed)
+    truth = truth.set_index("depot")
+    fit = smf.glm("cost ~ 0 + C(depot) + C(job, Treatment('service')) + vehicle_age_years", data,
+                  family=sm.families.Gamma(sm.families.links.Log())).fit()
+    names = [f"C(depot)[{d}]" for d in truth.index]
+    own = fit.params[names].to_numpy()
+    variance = np.diag(fit.cov_params().loc[names, names])
+    small = (truth["n_jobs"] <= truth["n_jobs"].quantile(1 / 3)).to_numpy()
+    return (_rmse(_shrink(own, variance), truth["true_log_mean"], small),
+            _rmse(own, truth["true_log_mean"], small))
+
+
+def _ward_errors(demo, seed):
+    """Small-ward RMSE of shrunken and separate log odds: empirical logits (Cox 1970) with their
+    binomial variances inflated by the Pearson dispersion of a binomial GLM (McCullagh and Nelder 1989,
+    §4.5), shrunk towards the ward's type (a pooled fit's type effect)."""
+    data, truth = demo("ward_infections", seed)
+    truth = truth.set_index("ward")
+    separate = smf.glm("infected + I(admitted - infected) ~ 0 + C(ward)", data, family=sm.families.Binomial()).fit()
+    dispersion = separate.pearson_chi2 / separate.df_resid
+    per = data.groupby("ward").agg(infected=("infected", "sum"), n=("admitted", "sum"),
+                                   kind=("ward_type", "first")).loc[truth.index]
+    healthy = per["n"] - per["infected"]
+    own = np.log((per["infected"] + 0.5) / (healthy + 0.5)).to_numpy()
+    variance = dispersion * (1 / (per["infected"] + 0.5) + 1 / (healthy + 0.5)).to_numpy()
+    pooled = smf.glm("infected + I(admitted - infected) ~ C(ward_type, Treatment('general'))", data,
+                     family=sm.families.Binomial()).fit()
+    share = pooled.predict(pd.DataFrame({"ward_type": per["kind"].to_numpy()})).to_numpy()
+    by_type = np.log(share / (1 - share))
+    small = (truth["n_months"] <= truth["n_months"].quantile(1 / 3)).to_numpy()
+    return (_rmse(by_type + _shrink(own - by_type, variance), truth["true_log_odds"], small),
+            _rmse(own, truth["true_log_odds"], small))
+
+
+@pytest.mark.parametrize("errors", [_wheat_errors, _line_errors, _depot_errors, _repair_errors, _ward_errors],
+                         ids=["wheat", "line_defects", "depot_delays", "depot_repairs", "ward_infections"])
 def test_partial_pooling_beats_no_pooling_for_small_groups(demo, errors):
     # The demo's own seed: a clear win (at least 15 % lower error).
     partial, separate = errors(demo, DEFAULT_SEED)
@@ -249,3 +346,12 @@ def test_truth_matches_the_stated_parameters(demo):
     assert 0.5 < lines["true_log_rate"].std() / TRUE_PARAMETERS["line_defects"]["line.sd"] < 1.6
     _, depots = demo("depot_delays")
     assert 0.5 < depots["true_log_odds"].std() / TRUE_PARAMETERS["depot_delays"]["depot.sd"] < 1.6
+    _, repairs = demo("depot_repairs")
+    assert 0.5 < repairs["true_log_mean"].std() / TRUE_PARAMETERS["depot_repairs"]["depot.sd"] < 1.6
+    _, wards = demo("ward_infections")
+    ward = TRUE_PARAMETERS["ward_infections"]
+    by_type = wards["ward_type"].map({"general": 0.0, "surgical": ward["ward_type=surgical"],
+                                      "intensive": ward["ward_type=intensive"]})
+    assert 0.5 < (wards["true_log_odds"] - by_type).std() / ward["ward.sd"] < 1.6
+    _, plots = demo("plot_birds")
+    assert 0.5 < plots["true_log_rate"].std() / TRUE_PARAMETERS["plot_birds"]["plot.sd"] < 1.6

@@ -5,7 +5,8 @@ A family added to the registry is checked here with no other edit:
 * its log density, written from its formula, equals the same distribution in
   scipy.stats (its ``reference``), and the PyMC likelihood the model uses gives
   the same numbers (so the fit and everything computed after it agree);
-* its simulator reproduces the reference distribution's mean and variance;
+* its simulator reproduces the reference distribution's mean and variance, and
+  its mean on the outcome's scale is the reference's mean per trial or unit of exposure;
 * its Fisher information about the linear predictor (used by the pooling
   weight) equals the variance of the score, ``E[(d log p / d eta)^2]``
   (Fisher's identity, e.g. Casella and Berger 2002, Lemma 7.3.11), estimated by
@@ -80,6 +81,16 @@ def test_simulator_moments_match_reference(family):
 
 
 @pytest.mark.parametrize("family", FAMILIES, ids=IDS)
+def test_mean_is_the_reference_mean_per_unit(family):
+    # Results on the outcome's scale are Family.mean: the expected outcome per trial or per unit of
+    # exposure, which must be the scipy distribution's mean divided by the trials or the exposure.
+    rows, _, eta, params = _case(family, n=50)
+    volume = rows.trials if rows.trials is not None else rows.exposure if rows.exposure is not None else 1.0
+    np.testing.assert_allclose(family.mean(eta, params) * volume, family.reference(eta, rows, params).mean(),
+                               rtol=1e-10)
+
+
+@pytest.mark.parametrize("family", FAMILIES, ids=IDS)
 def test_information_is_the_variance_of_the_score(family):
     rows, _, eta, params = _case(family, n=4)
     params = {k: 1.7 * v for k, v in params.items()}  # away from 1, so that a missing scale shows
@@ -105,20 +116,44 @@ def _sm_nb(rows, X):
     return res.params[:-1]
 
 
-#: Family -> the same maximum-likelihood fit in statsmodels (a general-purpose reference library).
+def _sm_zip(rows, X):
+    model = sm.ZeroInflatedPoisson(rows.y, X, exog_infl=np.ones((len(rows.y), 1)), exposure=rows.exposure,
+                                   inflation="logit")
+    return model.fit(method="newton", maxiter=200, disp=0).params[1:]   # params[0]: the inflation's logit
+
+
+def _scipy_beta_binomial(rows, X):
+    """statsmodels has no beta-binomial regression: maximise scipy.stats.betabinom's log mass directly."""
+    from scipy import optimize, special, stats
+
+    def nll(theta):
+        p, phi = special.expit(X @ theta[:-1]), np.exp(theta[-1])
+        return -np.sum(stats.betabinom.logpmf(rows.y, rows.trials, p * phi, (1 - p) * phi))
+
+    start = np.r_[sm.GLM(np.column_stack([rows.y, rows.trials - rows.y]), X,
+                         family=sm.families.Binomial()).fit().params, np.log(10.0)]
+    return optimize.minimize(nll, start, method="BFGS", options={"gtol": 1e-9}).x[:-1]
+
+
+#: Family -> the same maximum-likelihood fit in statsmodels (a general-purpose reference library), or for a
+#: model statsmodels lacks, scipy.optimize on the scipy.stats distribution.
 STATSMODELS = {
     "normal": lambda rows, X: sm.OLS(rows.y, X).fit().params,
     "bernoulli": _sm_binomial,
     "binomial": _sm_binomial,
     "poisson": lambda rows, X: sm.GLM(rows.y, X, family=sm.families.Poisson(), exposure=rows.exposure).fit().params,
     "negative_binomial": _sm_nb,
+    "gamma": lambda rows, X: sm.GLM(rows.y, X, family=sm.families.Gamma(sm.families.links.Log())).fit().params,
+    "lognormal": lambda rows, X: sm.OLS(np.log(rows.y), X).fit().params,   # lognormal ML = least squares on log y
+    "beta_binomial": _scipy_beta_binomial,
+    "zero_inflated_poisson": _sm_zip,
 }
 
 
 @pytest.mark.parametrize("family", FAMILIES, ids=IDS)
 def test_baselines_match_statsmodels(family):
     if family.name not in STATSMODELS:
-        pytest.skip(f"statsmodels has no {family.name} GLM with the same likelihood")
+        pytest.skip(f"no reference fit of {family.name} with the same likelihood")
     rows, x, _, _ = _case(family, n=500, seed=3)
     X = np.column_stack([np.ones_like(x), x])
     ours = fit_glm(SimpleNamespace(family=family, outcome=rows), sp.csr_matrix(X), np.ones(len(x), bool))
@@ -154,3 +189,19 @@ def test_small_fit_recovers_intercept_and_group_sd(family, tmp_path):
         row = summary.loc[name]
         assert row["lower"] <= truth <= row["upper"], (name, row.to_dict())
     assert summary.loc["intercept", "sd"] < prior_sd / 4
+
+
+@pytest.mark.parametrize("prior", [{"beta": {"alpha": 2, "beta": 5}}, {"uniform": {"lower": 0, "upper": 0.5}}])
+def test_a_probability_takes_a_beta_or_a_bounded_uniform_prior(prior, tmp_path):
+    # zero_inflation is a probability: the spec's prior replaces the default beta(1, 1), and its log
+    # density is scipy's (beta: scipy.stats.beta; uniform: 1 / 0.5 inside the bounds).
+    rng = np.random.default_rng(4)
+    pd.DataFrame({"site": np.repeat(["a", "b", "c"], 10), "y": rng.poisson(2, 30)}).to_csv(tmp_path / "d.csv",
+                                                                                       index=False)
+    spec = {"format": "hierwork/1", "name": "zi", "data": "d.csv", "priors": {"zero_inflation": prior},
+            "outcome": {"column": "y", "family": "zero_inflated_poisson"}, "groups": {"site": {"column": "site"}}}
+    (tmp_path / "spec.yaml").write_text(yaml.safe_dump(spec))
+    chosen = hierwork.check(tmp_path / "spec.yaml").plan.priors["zero_inflation"]
+    assert not chosen.default and chosen.dist == next(iter(prior))
+    expected = np.log(30 * 0.2 ** 1 * 0.8 ** 4) if chosen.dist == "beta" else np.log(2.0)  # B(2, 5) = 1/30
+    np.testing.assert_allclose(chosen.logpdf(0.2), expected, rtol=1e-12)

@@ -63,7 +63,13 @@ LINK_PRIORS = {"intercept": {"normal": {"mu": 0, "sigma": 1}}, "x": {"normal": {
                "g.sd": {"half_normal": {"sigma": 0.7}}}
 COUNT_PRIORS = {**LINK_PRIORS, "intercept": {"normal": {"mu": 1, "sigma": 0.5}}}
 SCALE_PRIORS = {**LINK_PRIORS, "residual_sd": {"half_normal": {"sigma": 1}}}
-EXTRA = {"nu": {"gamma": {"alpha": 2, "beta": 0.1}}, "dispersion": {"gamma": {"alpha": 2, "beta": 0.1}}}
+EXTRA = {"nu": {"gamma": {"alpha": 2, "beta": 0.1}}, "dispersion": {"gamma": {"alpha": 2, "beta": 0.1}},
+         "concentration": {"gamma": {"alpha": 2, "beta": 0.1}}, "zero_inflation": {"beta": {"alpha": 2, "beta": 4}},
+         "cv": {"gamma": {"alpha": 4, "beta": 8}}, "log_sd": {"half_normal": {"sigma": 1}}}
+#: Families whose outcome must be positive (the placeholder outcome is 1 or 2 for them, else 0 or 1).
+POSITIVE = ("gamma", "lognormal")
+#: Families with a number of trials per row.
+TRIALS = ("binomial", "beta_binomial")
 COMMON = [("b", "intercept"), ("b", "x"), ("g__sd", "intercept"),
           ("g__effect", ("g0", "intercept")), ("g__effect", ("g1", "intercept"))]
 
@@ -80,6 +86,12 @@ CASES = {
     "poisson": ("non_centred", COUNT_PRIORS, COMMON),
     "negative_binomial": ("non_centred", {**COUNT_PRIORS, "dispersion": EXTRA["dispersion"]},
                           COMMON + [("dispersion", None)]),
+    "gamma": ("non_centred", {**LINK_PRIORS, "cv": EXTRA["cv"]}, COMMON + [("cv", None)]),
+    "lognormal": ("non_centred", {**LINK_PRIORS, "log_sd": EXTRA["log_sd"]}, COMMON + [("log_sd", None)]),
+    "beta_binomial": ("non_centred", {**LINK_PRIORS, "concentration": EXTRA["concentration"]},
+                      COMMON + [("concentration", None)]),
+    "zero_inflated_poisson": ("non_centred", {**COUNT_PRIORS, "zero_inflation": EXTRA["zero_inflation"]},
+                              COMMON + [("zero_inflation", None)]),
 }
 
 
@@ -92,9 +104,9 @@ def _plan(folder, family, parameterisation, priors, varying=("intercept",)):
     n = GROUPS * ROWS
     frame = pd.DataFrame({"g": np.repeat([f"g{j}" for j in range(GROUPS)], ROWS),
                           "x": np.round(rng.normal(size=n), 3), "trials": 10,
-                          "y": rng.integers(0, 2, size=n)})
+                          "y": rng.integers(0, 2, size=n) + (family in POSITIVE)})
     frame.to_csv(folder / "data.csv", index=False)
-    outcome = {"column": "y", "family": family, **({"trials": "trials"} if family == "binomial" else {})}
+    outcome = {"column": "y", "family": family, **({"trials": "trials"} if family in TRIALS else {})}
     doc = {"format": "hierwork/1", "name": f"sbc_{family}", "data": "data.csv", "outcome": outcome,
            "predictors": ["x"], "priors": priors,
            "groups": {"g": {"column": "g", "varying": list(varying), "parameterisation": parameterisation}}}

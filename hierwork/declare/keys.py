@@ -88,10 +88,10 @@ SPEC_KEYS = {
     "data": Key("str", "CSV or Parquet file, relative to the spec file."),
     "outcome": Key("section", "The outcome and its family.", fields={
         "column": Key("str", "Outcome column."),
-        "family": Key("choice", "Likelihood family (link: identity, logit or log).", "normal",
+        "family": Key("choice", "Likelihood family (link: identity, logit or log; README, \"Families\").", "normal",
                       choices=FAMILY_NAMES),
-        "trials": Key("str", "binomial: column with the number of trials.", None),
-        "exposure": Key("str", "poisson / negative_binomial: column of exposures (log offset).", None),
+        "trials": Key("str", "binomial / beta_binomial: column with the number of trials.", None),
+        "exposure": Key("str", "poisson / negative_binomial / zero_inflated_poisson: column of exposures (log offset).", None),
         "known_sd": Key("str", "normal: column of known per-row standard errors (meta-analysis).", None),
     }),
     "missing": Key("choice", "Rows with a missing value in a column the model uses: 'error' stops with "
@@ -137,8 +137,9 @@ SPEC_KEYS = {
                   "data), 'zero', a number, or a level of a categorical predictor (default: 'mean' for "
                   "numeric predictors, the reference level for categorical ones).", {},
                   item=Key("reference", "mean, zero, a number or a level")),
-        "rate_per": Key("float", "Poisson / negative binomial: rates are per this many units of exposure "
-                        "(e.g. 1000 for a rate per 1,000 hours).", 1.0, low=0, open_low=True),
+        "rate_per": Key("float", "Counts (poisson, negative_binomial, zero_inflated_poisson): rates are per "
+                        "this many units of exposure (e.g. 1000 for a rate per 1,000 hours).", 1.0, low=0,
+                        open_low=True),
         "target": Key("section", "A value on the outcome's scale to judge groups against: "
                       "p_beyond_target per group.", None, fields={
                           "value": Key("float", "The target (a probability, a rate per rate_per, or the "

@@ -7,10 +7,12 @@ correlation matrix) and its log density for checks after sampling.
 
 Default rule (``hierwork check`` marks defaults with ``*``; ``plan.json`` stores
 each default with the sentence that derived it). Let ``S`` be the outcome's
-reference spread on the linear predictor's scale (its SD for continuous
-outcomes; half a unit of log-odds or log rate for the logit and log links, i.e.
-odds or rates multiplied by 1.65) and ``m`` its centre there (mean, logit of
-the pooled share, log of the pooled rate). With ``M = 5`` spreads and
+reference spread on the linear predictor's scale (its SD for normal and
+Student-t outcomes; the SD of its logarithm for the positive amounts of gamma
+and lognormal, observed directly as the SD is; half a unit of log-odds or log
+rate for proportions and counts, i.e. odds or rates multiplied by 1.65) and
+``m`` its centre there (mean, logit of the pooled share, log of the pooled
+rate, log of the mean, mean of the logarithm). With ``M = 5`` spreads and
 ``z = 2.576`` (the 99% point of the normal):
 
 * **coefficient** of a term whose values span the observed range ``R`` (an
@@ -25,7 +27,9 @@ the pooled share, log of the pooled rate). With ``M = 5`` spreads and
   ``6.6 S``); **SD of a varying slope** of a term with range ``R``: median
   ``S / R``, so the typical group's slope moves the linear predictor across
   the range by up to one spread;
-* **residual SD** (normal, Student-t): ``exponential`` with median ``S``;
+* **residual SD** (normal, Student-t), and its log-scale counterparts lognormal
+  ``log_sd`` and gamma ``cv`` (for a gamma, the SD of log outcome is about its
+  coefficient of variation): ``exponential`` with median ``S``;
 * **SD of the log residual SDs** of a factor with ``spread: varying``
   (``F.spread.sd``): ``exponential`` with median 0.35, so a typical group's
   residual SD is within a factor of about 1.4 of the population's (99% prior
@@ -34,7 +38,11 @@ the pooled share, log of the pooled rate). With ``M = 5`` spreads and
   weaker correlations;
 * family parameters: Student-t ``nu`` ``gamma(2, 0.1)`` (Juarez and Steel 2010,
   J. Business and Economic Statistics 28, 541-551); negative-binomial
-  ``dispersion`` ``gamma(2, 0.1)``.
+  ``dispersion`` ``gamma(2, 0.1)``; beta-binomial ``concentration``
+  ``exponential`` with median the median number of trials ``n`` (a typical
+  row's binomial variance about doubled, ``1 + (n - 1) / (n + 1)``; 98% between
+  ``n / 70`` and ``6.6 n``); zero-inflated Poisson ``zero_inflation``
+  ``beta(1, 1)``.
 """
 from __future__ import annotations
 
@@ -55,7 +63,8 @@ class Distribution:
     """One prior distribution of the table.
 
     ``supports`` lists what it can be the prior of: ``real``, ``positive``
-    (uniform only with ``lower >= 0``) or ``correlation``.
+    (uniform only with ``lower >= 0``), ``probability`` (uniform only within 0
+    and 1) or ``correlation``.
     """
 
     name: str
@@ -83,6 +92,7 @@ class Distribution:
             "half_cauchy": lambda: stats.halfcauchy(0, p["beta"]),
             "exponential": lambda: stats.expon(0, 1.0 / p["lam"]),
             "gamma": lambda: stats.gamma(p["alpha"], 0, 1.0 / p["beta"]),
+            "beta": lambda: stats.beta(p["alpha"], p["beta"]),
         }[self.name]()
         out = frozen.logpdf(x)
         return out + np.log(2.0) if self.name == "half_student_t" else out
@@ -92,12 +102,13 @@ DISTRIBUTIONS = {d.name: d for d in (
     Distribution("normal", "Normal", ("mu", "sigma"), ("sigma",), ("real",)),
     Distribution("student_t", "StudentT", ("nu", "mu", "sigma"), ("nu", "sigma"), ("real",)),
     Distribution("cauchy", "Cauchy", ("alpha", "beta"), ("beta",), ("real",)),
-    Distribution("uniform", "Uniform", ("lower", "upper"), (), ("real", "positive")),
+    Distribution("uniform", "Uniform", ("lower", "upper"), (), ("real", "positive", "probability")),
     Distribution("half_normal", "HalfNormal", ("sigma",), ("sigma",), ("positive",)),
     Distribution("half_student_t", "HalfStudentT", ("nu", "sigma"), ("nu", "sigma"), ("positive",)),
     Distribution("half_cauchy", "HalfCauchy", ("beta",), ("beta",), ("positive",)),
     Distribution("exponential", "Exponential", ("lam",), ("lam",), ("positive",)),
     Distribution("gamma", "Gamma", ("alpha", "beta"), ("alpha", "beta"), ("positive",)),
+    Distribution("beta", "Beta", ("alpha", "beta"), ("alpha", "beta"), ("probability",)),
     Distribution("lkj", "LKJCorr", ("eta",), ("eta",), ("correlation",)),
 )}
 
@@ -112,7 +123,7 @@ class Prior:
     dist: str
     params: dict
     default: bool
-    support: str  # "real", "positive" or "correlation"
+    support: str  # "real", "positive", "probability" or "correlation"
     rule: str = ""
 
     def text(self) -> str:
@@ -162,10 +173,9 @@ def group_sd_prior(spread: float, span: float | None, what: str) -> Prior:
                  + " across the term's range" * bool(span) + "; 99% below 6.6 times the median")
 
 
-def residual_sd_prior(spread: float) -> Prior:
-    """``exponential`` with median one outcome spread."""
-    return Prior("exponential", {"lam": _LN2 / spread}, True, "positive",
-                 f"median {_n(spread)}, the outcome's SD")
+def residual_sd_prior(spread: float, what: str = "the outcome's SD") -> Prior:
+    """``exponential`` with median one outcome spread (``what`` names it in the rule)."""
+    return Prior("exponential", {"lam": _LN2 / spread}, True, "positive", f"median {_n(spread)}, {what}")
 
 
 #: Median of the default prior of ``F.spread.sd`` (log scale: group SDs typically within x1.4).
@@ -228,6 +238,10 @@ def default_priors(family, rows, term_stats: dict, centre: float, spread: float,
     return out
 
 
+#: How a message names what a parameter is, by its support.
+_SUPPORT_WORDS = {"correlation": "a correlation matrix", "probability": "a probability"}
+
+
 def apply_user_priors(defaults: dict, spec, categorical_terms: dict) -> dict:
     """Replace defaults by the spec's priors, checking names and supports.
 
@@ -245,10 +259,13 @@ def apply_user_priors(defaults: dict, spec, categorical_terms: dict) -> dict:
             allowed = [d for d, dist in DISTRIBUTIONS.items() if support in dist.supports]
             if ps.dist not in allowed:
                 raise SpecError(f"{ps.dist!r} cannot be the prior of {key!r}, which is "
-                                f"{'a correlation matrix' if support == 'correlation' else support}",
+                                f"{_SUPPORT_WORDS.get(support, support)}",
                                 where=spec.where(f"priors.{key}"), hint=f"use one of: {', '.join(allowed)}")
             if support == "positive" and ps.dist == "uniform" and ps.params["lower"] < 0:
                 raise SpecError(f"uniform prior of {key!r} must have lower >= 0", where=spec.where(f"priors.{key}"))
+            if support == "probability" and ps.dist == "uniform" and not 0 <= ps.params["lower"] < ps.params["upper"] <= 1:
+                raise SpecError(f"uniform prior of {key!r} must lie within 0 and 1", where=spec.where(f"priors.{key}"),
+                                hint="write e.g. uniform: {lower: 0, upper: 0.5}")
             out[target] = Prior(ps.dist, dict(ps.params), False, support)
     return out
 

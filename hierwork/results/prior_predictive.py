@@ -32,7 +32,7 @@ def prior_predictive(plan, seed: int, draws: int = 500) -> dict:
         ``draws``, observed range, quantiles of the simulated outcomes, share of
         simulated values more than ``FAR_FACTOR`` observed ranges beyond the
         observed values, family checks (logit: share of probabilities below 0.01
-        or above 0.99; log link: share of counts above 1e6), and ``warnings``
+        or above 0.99; counts with a log link: share above 1e6), and ``warnings``
         (plain-language sentences; empty when nothing looks absurd).
     """
     import pymc as pm
@@ -66,7 +66,7 @@ def prior_predictive(plan, seed: int, draws: int = 500) -> dict:
                 out["warnings"].append(
                     f"the priors put {extreme:.0%} of row probabilities below 1% or above 99%: on the logit "
                     "scale an SD above about 3 already means 'almost always 0 or 1'; narrow the priors")
-        else:
+        elif plan.family.discrete:  # counts; a positive amount (gamma, lognormal) may well exceed a million
             huge = float(np.mean(y_sim > HUGE_COUNT))
             out["share_count_above_1e6"] = huge
             if huge > HUGE_SHARE:

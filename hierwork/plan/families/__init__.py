@@ -25,6 +25,10 @@ REGISTRY = {
     "binomial": "hierwork.plan.families.binomial:Binomial",
     "poisson": "hierwork.plan.families.poisson:Poisson",
     "negative_binomial": "hierwork.plan.families.negative_binomial:NegativeBinomial",
+    "gamma": "hierwork.plan.families.gamma:Gamma",
+    "lognormal": "hierwork.plan.families.lognormal:Lognormal",
+    "beta_binomial": "hierwork.plan.families.beta_binomial:BetaBinomial",
+    "zero_inflated_poisson": "hierwork.plan.families.zero_inflated_poisson:ZeroInflatedPoisson",
 }
 
 FAMILY_NAMES = tuple(REGISTRY)
