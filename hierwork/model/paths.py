@@ -104,5 +104,7 @@ def choose_engine(requested: str, cells: int) -> tuple[str, str]:
     if requested != "auto":
         return requested, "set in the spec or on the command line"
     if cells > NUTPIE_FROM_CELLS:
-        return "nutpie", f"{cells:,} data cells > {NUTPIE_FROM_CELLS:,}: gradient time dominates"
-    return "pymc", f"{cells:,} data cells <= {NUTPIE_FROM_CELLS:,}: compile time dominates"
+        return "nutpie", (f"{cells:,} likelihood terms x design columns > {NUTPIE_FROM_CELLS:,}: "
+                          "gradient time dominates")
+    return "pymc", (f"{cells:,} likelihood terms x design columns <= {NUTPIE_FROM_CELLS:,}: "
+                    "compile time dominates")
