@@ -1,6 +1,6 @@
 """Does ``parameterisation: auto`` sample as well as the better fixed choice?
 
-Three Poisson problems (plain path, every group effect sampled), simulated with
+Poisson problems with one factor (every group effect sampled), simulated with
 a fixed seed:
 
 * sparse: 150 groups with 1-3 rows each and a small between-group SD (0.15):
@@ -10,8 +10,17 @@ a fixed seed:
 * data-rich with 12 groups of 150 rows (the same, above auto's few-groups limit
   of 10 groups, under which auto always takes the non-centred form).
 
-Each is fitted through ``hierwork.fit`` with the factor's parameterisation set
-to ``centred``, ``non_centred`` and ``auto``. Reported per fit: wall time of the
+and problems with several factors, where ``auto`` judges each factor from the
+variance components of all of them estimated jointly:
+
+* crossed: normal outcome, 24 plates x 6 samples crossed, one row per pair
+  (144 rows; SDs 0.85 and 1.9, residual 0.55), the reduced path;
+* nested_counts_obs: Poisson counts, 30 sites in 6 regions, 5 rows per site,
+  plus an observation-level factor (one group per row; SDs 0.4, 0.3, 0.3).
+
+Each is fitted through ``hierwork.fit`` with every factor's parameterisation
+set to ``centred``, ``non_centred`` and ``auto`` (auto may mix forms across
+factors; mixed fixed forms are not enumerated). Reported per fit: wall time of the
 whole fit, sampling time, the smallest bulk ESS over all parameters checked by
 the gate (``diagnostics.json``; includes every group effect), bulk ESS per
 second of sampling, divergent transitions, and for ``auto`` the ratio of its
@@ -24,7 +33,7 @@ draws exactly the same numbers as that form: its ESS equals the chosen form's
 and the ratio differs from 1 only by timing noise. What the benchmark shows is
 whether auto picks the better form on each problem.
 
-Run:  python benchmarks/bench_parameterisation.py [--out FOLDER] [--markdown FILE]
+Run:  python benchmarks/bench_parameterisation.py [--out FOLDER] [--markdown FILE] [--problems NAME ...]
 """
 from __future__ import annotations
 
@@ -50,7 +59,19 @@ REPEATS = 2
 
 
 def simulate(kind: str, rng) -> pd.DataFrame:
-    """Counts per row: ``log mu = 1 + 0.3 x + u_group``, ``u ~ N(0, sd)``."""
+    """One problem's rows (see the module docstring)."""
+    if kind == "crossed":
+        plate, sample = np.meshgrid(np.arange(24), np.arange(6), indexing="ij")
+        plate, sample = plate.ravel(), sample.ravel()
+        y = 22 + rng.normal(0, 0.85, 24)[plate] + rng.normal(0, 1.9, 6)[sample] + rng.normal(0, 0.55, 144)
+        return pd.DataFrame({"plate": [f"p{g:02d}" for g in plate], "sample": [f"s{g}" for g in sample],
+                             "diameter_mm": np.round(y, 3)})
+    if kind == "nested_counts_obs":
+        site = np.repeat(np.arange(30), 5)
+        region = site // 5
+        eta = 1.0 + rng.normal(0, 0.4, 6)[region] + rng.normal(0, 0.3, 30)[site] + rng.normal(0, 0.3, 150)
+        return pd.DataFrame({"region": [f"r{g}" for g in region], "site": [f"t{g % 5}" for g in site],
+                             "visit": [f"v{i:03d}" for i in range(150)], "nests": rng.poisson(np.exp(eta))})
     sizes, sd = {"sparse": (rng.integers(1, 4, size=150), 0.15), "data_rich": (np.full(5, 400), 0.5),
                  "data_rich_12": (np.full(12, 150), 0.5)}[kind]
     group = np.repeat(np.arange(len(sizes)), sizes)
@@ -60,11 +81,23 @@ def simulate(kind: str, rng) -> pd.DataFrame:
     return pd.DataFrame({"depot": [f"d{g:03d}" for g in group], "x": np.round(x, 4), "parcels_lost": counts})
 
 
+#: Outcome, predictors and groups of each problem's spec.
+SPECS = {
+    "crossed": ({"column": "diameter_mm", "family": "normal"}, [],
+                {"plate": {"column": "plate"}, "sample": {"column": "sample"}}),
+    "nested_counts_obs": ({"column": "nests", "family": "poisson"}, [],
+                          {"region": {"column": "region"}, "site": {"column": "site", "within": "region"},
+                           "visit": {"column": "visit"}}),
+}
+ONE_FACTOR = ({"column": "parcels_lost", "family": "poisson"}, ["x"], {"depot": {"column": "depot"}})
+PROBLEMS = ("sparse", "data_rich", "data_rich_12", "crossed", "nested_counts_obs")
+
+
 def write_spec(folder: Path, kind: str) -> Path:
     simulate(kind, np.random.default_rng(SEED)).to_csv(folder / f"{kind}.csv", index=False)
-    doc = {"format": "hierwork/1", "name": f"bench_{kind}", "data": f"{kind}.csv",
-           "outcome": {"column": "parcels_lost", "family": "poisson"}, "predictors": ["x"],
-           "groups": {"depot": {"column": "depot"}}}
+    outcome, predictors, groups = SPECS.get(kind, ONE_FACTOR)
+    doc = {"format": "hierwork/1", "name": f"bench_{kind}", "data": f"{kind}.csv", "outcome": outcome,
+           "predictors": predictors, "groups": groups}
     path = folder / f"{kind}.yaml"
     path.write_text(yaml.safe_dump(doc), encoding="utf-8")
     return path
@@ -72,14 +105,17 @@ def write_spec(folder: Path, kind: str) -> Path:
 
 def measure(spec: Path, choice: str, out: Path) -> dict:
     t0 = time.perf_counter()
+    factors = list(yaml.safe_load(spec.read_text())["groups"])
     run = hierwork.fit(spec, out=out, force=True, progress=False,
-                       overrides={**SAMPLING, "groups.depot.parameterisation": choice})
+                       overrides={**SAMPLING, **{f"groups.{f}.parameterisation": choice for f in factors}})
     wall = time.perf_counter() - t0
     checks = {c["name"]: c for c in run.diagnostics["checks"]}
     plan = json.loads((run.path / "plan.json").read_text())
+    resolved = "/".join(f["parameterisation"].replace("non_centred", "nc").replace("centred", "c")
+                        for f in plan["factors"])
     sampling = float(run.provenance["sampling_seconds"])
     ess = float(checks["ess_bulk"]["value"])
-    return {"choice": choice, "resolved": plan["factors"][0]["parameterisation"], "wall_s": wall, "sampling_s": sampling,
+    return {"choice": choice, "resolved": resolved, "wall_s": wall, "sampling_s": sampling,
             "min_ess_bulk": ess, "ess_per_s": ess / sampling,
             "min_ess_bulk_summary": float(run.summary["ess_bulk"].min()),
             "divergences": int(checks["divergences"]["value"]), "passed": run.passed}
@@ -119,12 +155,14 @@ def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--out", type=Path, help="keep the run folders here (default: a temporary folder)")
     parser.add_argument("--markdown", type=Path, help="also write the table and machine line to this file")
+    parser.add_argument("--problems", nargs="+", choices=PROBLEMS, default=list(PROBLEMS),
+                        help="problems to run (default: all)")
     args = parser.parse_args()
     with tempfile.TemporaryDirectory() as tmp:
         root = args.out or Path(tmp)
         root.mkdir(parents=True, exist_ok=True)
         results = {}
-        for kind in ("sparse", "data_rich", "data_rich_12"):
+        for kind in args.problems:
             spec = write_spec(root, kind)
             runs = {choice: [] for choice in CHOICES}
             for rep in range(REPEATS):  # alternate the order so no choice always runs first (cold caches)

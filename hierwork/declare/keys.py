@@ -115,8 +115,9 @@ SPEC_KEYS = {
         "cores": Key("int", "Processes for chains (default: chains, at most the CPU count).", None, low=1),
         "engine": Key("choice", "NUTS implementation: PyMC's own, nutpie, or chosen by problem size.",
                       "auto", choices=("auto", "pymc", "nutpie")),
-        "path": Key("choice", "Model form for normal outcomes: exact collapsed, reduced sufficient "
-                    "statistics, or per-row; 'auto' takes the fastest exact one that applies.",
+        "path": Key("choice", "Likelihood form: collapsed (normal, effects integrated out), reduced (per "
+                    "cell: sufficient statistics for normal, summed identical rows for bernoulli, binomial "
+                    "and poisson), or per-row; 'auto' takes the fastest exact one that applies.",
                     "auto", choices=("auto", "collapsed", "reduced", "plain")),
     }),
     "gate": Key("section", "Convergence checks that must pass before results count.", {}, fields={

@@ -169,3 +169,42 @@ def cell_stats(
         log_noise_var = np.bincount(cell, weights=-np.log(w), minlength=J)
     return CellStats(n=counts, xtx=xtx, xty=xty, yty=yty, centre=centre,
                      log_noise_var=log_noise_var)
+
+
+@dataclass(frozen=True)
+class RowCells:
+    """Rows grouped by identical predictors and group memberships (cells of counts and proportions).
+
+    Attributes
+    ----------
+    first : (C,) int
+        One row of each cell (its predictors and groups are the cell's).
+    cell : (n,) int
+        Cell of each row.
+    """
+
+    first: np.ndarray
+    cell: np.ndarray
+
+    @property
+    def n_cells(self) -> int:
+        return len(self.first)
+
+
+def row_cells(X: np.ndarray, codes: list) -> RowCells:
+    """Cells of rows sharing every column of ``X`` and every group code (exact equality).
+
+    Parameters
+    ----------
+    X : (n, p) float
+        Population design.
+    codes : list of (n,) int
+        One group code per factor.
+    """
+    import pandas as pd
+
+    key = pd.DataFrame(np.column_stack([X] + [np.asarray(c, dtype=float) for c in codes]))
+    cell = key.groupby(list(key.columns), sort=False).ngroup().to_numpy().astype(np.int64)
+    first = np.full(int(cell.max()) + 1 if len(cell) else 0, -1, dtype=np.int64)
+    first[cell[::-1]] = np.arange(len(cell))[::-1]
+    return RowCells(first=first, cell=cell)

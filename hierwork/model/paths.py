@@ -6,7 +6,12 @@
 * ``reduced``: normal outcome with crossed factors (or none): the group effects
   are sampled, the likelihood evaluated from per-cell sufficient statistics,
   exact and O(cells) (:func:`hierwork.model.rowwise.reduced_normal_likelihood`);
-* ``plain``: every other family, the per-row model.
+* ``reduced`` also for counts and proportions (bernoulli, binomial, poisson)
+  when rows share predictors and group memberships: each such cell is one
+  binomial (successes and trials summed) or Poisson (counts and exposures
+  summed) term, the same posterior as per row
+  (:meth:`~hierwork.plan.families.base.Family.aggregate`);
+* ``plain``: every other case, the per-row model.
 
 The spec's ``sampling.path`` may ask for a slower exact path than the best one,
 never a faster one that does not apply. Light: NumPy only, so ``check`` reads
@@ -37,12 +42,17 @@ def nesting_chain(plan) -> list | None:
 
 def best_path(plan) -> tuple[str, str]:
     """The fastest exact path for a plan, and why: ``(path, reason)``."""
-    if not plan.family.exact_normal:
-        return "plain", f"{plan.family.name} outcome: the group effects have no closed-form marginal"
     varying = [f.name for f in plan.factors if f.spread == "varying"]
     if varying:
         return "plain", (f"residual SD varies by {', '.join(varying)} (spread: varying): the exact fast paths "
                          "need one residual SD for all rows, so the per-row model is taken")
+    if not plan.family.exact_normal:
+        cells = count_cells(plan)
+        if cells is not None and cells < plan.n:
+            return "reduced", (f"{plan.family.name} outcome: {plan.n:,} rows in {cells:,} cells of identical "
+                               "predictors and groups, one likelihood term per cell (exact)")
+        why = "no two rows share predictors and groups" if cells is not None else "no exact cell form"
+        return "plain", f"{plan.family.name} outcome: the group effects have no closed-form marginal; {why}"
     if not plan.factors:
         return "reduced", "no grouping factor: likelihood from sufficient statistics"
     if nesting_chain(plan) is not None:
@@ -65,9 +75,22 @@ def resolve_path(spec, plan) -> tuple[str, str]:
     return requested, "set in the spec"
 
 
+def count_cells(plan) -> int | None:
+    """Cells of rows with identical predictors and groups, if the family has an exact cell form, else None."""
+    from hierwork.model.cells import row_cells
+
+    if not type(plan.family).__dict__.get("exact_cells", False):
+        return None
+    return row_cells(plan.X, [f.index for f in plan.factors]).n_cells
+
+
 def likelihood_size(plan, path: str) -> int:
-    """Terms the likelihood sums per gradient: rows, cells of crossed groups, or groups."""
-    if path == "plain" or not plan.factors:
+    """Terms the likelihood sums per gradient: rows, cells of crossed groups or of identical rows, or groups."""
+    if path == "plain":
+        return plan.n
+    if path == "reduced" and not plan.family.exact_normal:
+        return count_cells(plan)
+    if not plan.factors:
         return plan.n
     if path == "reduced":
         return len(np.unique(np.column_stack([f.index for f in plan.factors]), axis=0))
@@ -85,5 +108,7 @@ def choose_engine(requested: str, cells: int) -> tuple[str, str]:
     if requested != "auto":
         return requested, "set in the spec or on the command line"
     if cells > NUTPIE_FROM_CELLS:
-        return "nutpie", f"{cells:,} data cells > {NUTPIE_FROM_CELLS:,}: gradient time dominates"
-    return "pymc", f"{cells:,} data cells <= {NUTPIE_FROM_CELLS:,}: compile time dominates"
+        return "nutpie", (f"{cells:,} likelihood terms x design columns > {NUTPIE_FROM_CELLS:,}: "
+                          "gradient time dominates")
+    return "pymc", (f"{cells:,} likelihood terms x design columns <= {NUTPIE_FROM_CELLS:,}: "
+                    "compile time dominates")

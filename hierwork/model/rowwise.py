@@ -17,7 +17,9 @@ covariance; see :mod:`hierwork.model.blocks` for the centring of predictors):
 and with every factor non-centred, which prior predictive simulation uses
 (every variable then has a proper generative prior). On the reduced path
 (normal outcomes) the likelihood is evaluated from per-cell sufficient
-statistics instead of per row, with the same log density.
+statistics instead of per row, with the same log density; for counts and
+proportions, rows with identical predictors and groups are one binomial or
+Poisson term (the same posterior; the log density differs by a constant).
 """
 from __future__ import annotations
 
@@ -30,7 +32,7 @@ import pytensor.tensor as pt
 from hierwork.model import marginal
 from hierwork.model.blocks import (coords_of, factor_scales, family_extras, group_predictor_term,
                                    population_block, shift_matrix)
-from hierwork.model.cells import cell_index, cell_stats
+from hierwork.model.cells import cell_index, cell_stats, row_cells
 from hierwork.model.spread import row_residual_sd
 from hierwork.plan.plan import ModelPlan
 
@@ -46,8 +48,10 @@ def build_model(plan: ModelPlan, centre: bool = True, reduced: bool = False) -> 
         factor in its planned form (default). ``False`` gives the generative
         form, uncentred and every factor non-centred, for prior simulation.
     reduced : bool
-        Normal outcomes only: evaluate the likelihood from per-cell sufficient
-        statistics (exact, O(cells) per gradient) instead of per row.
+        Evaluate the likelihood per cell instead of per row (exact, O(cells)
+        per gradient): from sufficient statistics for normal outcomes, from
+        summed rows of identical predictors and groups for counts and
+        proportions (:meth:`~hierwork.plan.families.base.Family.aggregate`).
 
     Returns
     -------
@@ -88,15 +92,23 @@ def build_model(plan: ModelPlan, centre: bool = True, reduced: bool = False) -> 
                 parts.append((f, pt.dot(effect_c, to_data), shift))
             pm.Deterministic(f"{f.name}__effect", pt.dot(effect_c, to_data), dims=dims)
         free = [k for k in range(plan.X.shape[1]) if k not in anchored]
-        if reduced:
+        if reduced and plan.family.exact_normal:
             reduced_normal_likelihood(plan, b, free, parts, extras.get("residual_sd"))
         else:
-            eta = pt.dot(plan.X[:, free], b[free]) if free else pt.zeros(plan.n)
+            cells = row_cells(plan.X, [f.index for f in plan.factors]) if reduced else None
+            take = slice(None) if cells is None else cells.first  # one row per cell carries its eta
+            X = plan.X[take]
+            eta = pt.dot(X[:, free], b[free]) if free else pt.zeros(X.shape[0])
             for f, values, shift in parts:
-                eta = eta + (values[f.index] * plan.X[:, list(f.varying_cols)]).sum(axis=1)
+                index = f.index[take]
+                eta = eta + (values[index] * X[:, list(f.varying_cols)]).sum(axis=1)
                 if shift is not None:
-                    eta = eta + shift[f.index]
-            likelihood(plan, eta, extras)
+                    eta = eta + shift[index]
+            if cells is None:
+                likelihood(plan, eta, extras)
+            else:
+                family, outcome = plan.family.aggregate(plan.outcome, cells.cell, cells.n_cells)
+                family.likelihood(eta, pm.Data("y_data", outcome.y), outcome, extras)
     return model
 
 

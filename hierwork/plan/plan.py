@@ -10,7 +10,7 @@ target, contrasts).
 """
 from __future__ import annotations
 
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 
 import numpy as np
 import pandas as pd
@@ -134,10 +134,10 @@ def make_plan(spec, dataset) -> ModelPlan:
     rows = dataset.outcome_rows(spec.outcome)
     design = Design.from_spec(spec, dataset)
     X = design.matrix(frame)
-    z, var = family.working_response(rows)
     factor_plans = []
     for f in _parents_first(spec.factors):
-        factor_plans.append(_factor_plan(f, dataset, X, design, factor_plans, z, var))
+        factor_plans.append(_factor_plan(f, dataset, design, factor_plans))
+    factor_plans = _parameterise(factor_plans, family, rows, X)
 
     centre, spread = family.link_centre_spread(rows)
     term_stats = {name: (float(X[:, k].mean()), float(np.ptp(X[:, k])))
@@ -156,7 +156,8 @@ def make_plan(spec, dataset) -> ModelPlan:
                      estimands=estimands_of(spec, design, frame, factor_plans, family), missing=dict(dataset.missing))
 
 
-def _factor_plan(f, dataset, X, design, done, z, var) -> FactorPlan:
+def _factor_plan(f, dataset, design, done) -> FactorPlan:
+    """A factor's groups and terms; its parameterisation is decided for all factors at once (:func:`_parameterise`)."""
     codes, uniques = pd.factorize(dataset.labels[f.name])
     codes = codes.astype(np.int64)
     sizes = np.bincount(codes, minlength=len(uniques))
@@ -167,15 +168,30 @@ def _factor_plan(f, dataset, X, design, done, z, var) -> FactorPlan:
     if f.within is not None:
         parent = next(p for p in done if p.name == f.within)
         parent_index = pd.Series(parent.index).groupby(codes).first().to_numpy().astype(np.int64)
-    judged = [("intercept", *parameterisation.informativeness(z, var, codes, len(uniques)))]
-    for term in f.varying[1:]:
-        x = X[:, design.index(term)]
-        judged.append((term, *parameterisation.slope_informativeness(z, x, codes, len(uniques))))
-    form, reason = parameterisation.choose(f.parameterisation, judged)
     return FactorPlan(name=f.name, column=f.column, levels=tuple(str(u) for u in uniques), index=codes,
                       sizes=sizes, varying=f.varying, varying_cols=tuple(design.index(t) for t in f.varying),
                       predictors=group_design.names, W=W, parent=f.within, parent_index=parent_index,
-                      parameterisation=form, reason=reason, group_design=group_design, spread=f.spread)
+                      parameterisation=f.parameterisation, reason="set in the spec", group_design=group_design,
+                      spread=f.spread)
+
+
+def _parameterise(factor_plans, family, rows, X) -> list:
+    """Resolve ``auto`` from the variance components of all factors, estimated jointly.
+
+    The fixed part is the population design plus every factor's group-level
+    predictors per row; each varying term of each factor is one component
+    (:func:`hierwork.plan.parameterisation.variance_components`).
+    """
+    if not any(f.parameterisation == "auto" for f in factor_plans):
+        return factor_plans
+    z, var = family.working_response(rows)
+    fixed = np.column_stack([X] + [f.W[f.index] for f in factor_plans if f.predictors])
+    blocks = [parameterisation.Block(f.name, term, f.index, f.n_groups, None if k == 0 else X[:, col] - X[:, col].mean())
+              for f in factor_plans for k, (term, col) in enumerate(zip(f.varying, f.varying_cols))]
+    components = parameterisation.variance_components(z, var, fixed, blocks)
+    return [replace(f, **dict(zip(("parameterisation", "reason"),
+                                  parameterisation.choose(f.parameterisation, components.of(f.name)))))
+            for f in factor_plans]
 
 
 def _parents_first(factors) -> list:

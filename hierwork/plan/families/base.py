@@ -190,6 +190,23 @@ class Family:
         """Expected outcome per unit (per trial, per unit of exposure) on the outcome's scale."""
         return self.inverse_link(eta)
 
+    def aggregate(self, rows: OutcomeRows, cell: np.ndarray, n_cells: int):
+        """Exact cell form of rows that share their linear predictor, or None if the family has none.
+
+        Returns ``(family, cell_rows)``: the family and per-cell outcome columns
+        whose likelihood, for any common ``eta`` per cell, equals the product of
+        the rows' likelihoods up to a constant (so the posterior is the same).
+        Only a class that sets ``exact_cells = True`` itself has one (a subclass
+        changes the likelihood, so the flag is not inherited).
+        """
+        if not type(self).__dict__.get("exact_cells", False):
+            return None
+        return self.cells_of(rows, cell, n_cells)
+
+    def cells_of(self, rows: OutcomeRows, cell: np.ndarray, n_cells: int):
+        """The cell form of a family with ``exact_cells`` (see :meth:`aggregate`)."""
+        raise NotImplementedError
+
     def information(self, eta, rows: OutcomeRows, params: dict):
         """Fisher information about ``eta`` carried by each row, ``E[-d^2 log p(y) / d eta^2]``.
 

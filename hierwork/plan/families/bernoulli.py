@@ -11,6 +11,7 @@ class Bernoulli(Binomial):
     name = "bernoulli"
     columns = ()
     required = ()
+    exact_cells = True
     summary = "0/1 outcome (logit link)"
 
     def trials(self, rows):

@@ -15,6 +15,7 @@ class Binomial(Family):
     columns = ("trials",)
     required = ("trials",)
     discrete = True
+    exact_cells = True
     summary = "successes out of trials (logit link); needs outcome.trials"
 
     def trials(self, rows: OutcomeRows):
@@ -48,6 +49,11 @@ class Binomial(Family):
         p = special.expit(eta)
         w = np.maximum(n * p * (1 - p), 1e-12)
         return eta + (rows.y - n * p) / w, w
+
+    def cells_of(self, rows, cell, n_cells):
+        """Successes and trials summed per cell: a sum of binomials with one ``p`` is binomial."""
+        trials = np.bincount(cell, np.broadcast_to(self.trials(rows), rows.y.shape), n_cells)
+        return Binomial(), OutcomeRows(np.bincount(cell, rows.y, n_cells), trials=trials)
 
     def likelihood(self, eta, y, rows, params):
         import pymc as pm

@@ -14,6 +14,7 @@ class Poisson(Family):
     outcome_scale = "rate"
     columns = ("exposure",)
     discrete = True
+    exact_cells = True
     summary = "counts (log link); exposure for counts per unit of time, area, ..."
 
     def check_data(self, rows, fail):
@@ -52,6 +53,11 @@ class Poisson(Family):
     def expected(self, eta, rows):
         """Expected count of each row: rate times exposure."""
         return np.exp(eta + self.offset(rows))
+
+    def cells_of(self, rows, cell, n_cells):
+        """Counts and exposures summed per cell: a sum of Poissons with one rate is Poisson."""
+        exposure = np.bincount(cell, np.broadcast_to(self.exposure(rows), rows.y.shape), n_cells)
+        return Poisson(), OutcomeRows(np.bincount(cell, rows.y, n_cells), exposure=exposure)
 
     def likelihood(self, eta, y, rows, params):
         import pymc as pm
