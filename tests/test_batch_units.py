@@ -263,7 +263,30 @@ def test_outcome_trusts_exit_code_only_with_matching_diagnostics(tmp_path):
     failed = child.outcome(3, run, log)
     assert failed.status == "failed"
     assert failed.message == "r_hat 1.021 > 1.01 (plot__coef[p5, intercept]); divergences 7 > 0 (plot__sd[intercept])"
-    assert child.outcome(-9, run, log).message == "fit was killed by signal 9"
+    assert child.outcome(-9, run, log).message == \
+        "fit was killed by SIGKILL (signal 9) (by the out-of-memory killer, or by hand)"
+    assert child.outcome(-15, run, log).message == "fit was killed by SIGTERM (signal 15)"
+
+
+def test_guard_mirrors_a_kill_9_and_ends_what_the_fit_left(tmp_path):
+    """A fit killed by the out-of-memory killer (SIGKILL): no OSError from the guard, no orphan left."""
+    import os
+    import time
+
+    import psutil
+
+    pid_file = tmp_path / "orphan.pid"
+    script = ("import os, signal, subprocess, sys; "
+              "p = subprocess.Popen([sys.executable, '-c', 'import time; time.sleep(60)']); "
+              f"open({str(pid_file)!r}, 'w').write(str(p.pid)); os.kill(os.getpid(), signal.SIGKILL)")
+    guard = subprocess.run([sys.executable, child.GUARD, str(os.getpid()), sys.executable, "-c", script],
+                           capture_output=True, text=True, timeout=60, start_new_session=True)
+    assert guard.returncode == -9 and guard.stderr == ""
+    orphan = int(pid_file.read_text())
+    deadline = time.monotonic() + 10
+    while psutil.pid_exists(orphan) and psutil.Process(orphan).status() != psutil.STATUS_ZOMBIE:
+        assert time.monotonic() < deadline, "the fit's leftover process still runs"
+        time.sleep(0.1)
 
 
 def test_fit_command_passes_overrides_as_yaml_readable_values():

@@ -63,9 +63,13 @@ def main(argv=None) -> int:
         parser.print_help()
         return EXIT_INPUT
     from hierwork.errors import HierworkError
+    from hierwork.interrupts import Interrupted
 
     try:
         return int(args.func(args) or 0)
+    except Interrupted as stop:
+        print(f"hierwork: stopped by {stop.name}; {stop.outcome}", file=sys.stderr)
+        return stop.exit_code
     except HierworkError as exc:
         print(f"hierwork: error: {exc}", file=sys.stderr)
         return EXIT_INPUT
