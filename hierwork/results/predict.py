@@ -77,7 +77,9 @@ def predict(run, new_data, seed: int | None = None, interval: float | None = Non
     if interval is not None and not 0.5 <= interval < 1:
         raise HierworkError(f"interval must be at least 0.5 and below 1, got {interval:g}", where="interval")
     if isinstance(new_data, (str, Path)):
-        frame = read_table(Path(new_data))
+        plan = run.plan or {}  # labels and levels are read as text, exactly as when fitting
+        text = [f["column"] for f in plan.get("factors", [])] + list((plan.get("design") or {}).get("levels", {}))
+        frame = read_table(Path(new_data), text)
         ref = RowRef.of(str(new_data), len(frame), is_csv(Path(new_data)))
     else:
         frame = new_data.copy()
