@@ -204,6 +204,34 @@ def test_unreadable_spec_becomes_an_invalid_job_and_duplicates_are_refused(tmp_p
 
 
 # ---------------------------------------------------------------- queue
+def test_complete_attempt_left_unrecorded_is_adopted_not_rerun(tmp_path):
+    """Killed after the run folder was renamed into place, before the queue recorded it."""
+    from hierwork import runfolder
+    from hierwork.batch.progress import batch_status
+    from hierwork.batch.runner import adopt
+
+    q = Queue(tmp_path, create=True)
+    q.upsert_job("a", 0, "a.yaml", {}, "s1", "d1")
+    q.start_attempt("a", 1, {}, None, 0, "jobs/a/attempt-1")
+    q.upsert_job("b", 1, "b.yaml", {}, "s1", "d1")
+    q.start_attempt("b", 1, {}, None, 0, "jobs/b/attempt-1")
+    q.close()
+    status = batch_status(tmp_path)  # its batch process is gone: nothing reads as running
+    assert "2 jobs: 2 interrupted" in status and "running" not in status.replace("not running", "")
+    run = tmp_path / "jobs" / "a" / "attempt-1"
+    run.mkdir(parents=True)
+    for name in runfolder.REQUIRED_FILES:
+        (run / name).write_text("x")
+    (run / "provenance.json").write_text(json.dumps({"format": runfolder.RUN_FORMAT}))
+    (run / "diagnostics.json").write_text(json.dumps(FUNNEL))
+    q = Queue(tmp_path)
+    stale = {a["job"]: a for a in q.interrupt_stale()}
+    assert adopt(tmp_path, q, stale["a"]) == "failed"
+    assert adopt(tmp_path, q, stale["b"]) is None  # no folder: it runs again
+    assert q.upsert_job("a", 0, "a.yaml", {}, "s1", "d1") == "resume"
+    assert [(a["number"], a["status"], a["exit_code"]) for a in q.attempts("a")] == [(1, "failed", 3)]
+    assert q.attempts("a")[0]["message"].startswith("r_hat 1.021 > 1.01")
+
 def test_queue_resume_rules(tmp_path):
     q = Queue(tmp_path, create=True)
     assert q.upsert_job("a", 0, "a.yaml", {}, "s1", "d1") == "fresh"

@@ -20,8 +20,7 @@ class _Parser(argparse.ArgumentParser):
     """Usage mistakes are bad input too: one line, exit 2."""
 
     def error(self, message):
-        self.print_usage(sys.stderr)
-        print(f"hierwork: error: {message}", file=sys.stderr)
+        print(f"hierwork: error: {message} (see '{self.prog} --help')", file=sys.stderr)
         raise SystemExit(EXIT_INPUT)
 
 

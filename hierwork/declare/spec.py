@@ -205,8 +205,9 @@ def _apply_overrides(document: YamlDocument, overrides: dict) -> YamlDocument:
                 raise SpecError(f"cannot set {dotted!r}: {'.'.join(parts[:i + 1])!r} is not a mapping",
                                 where=f"override {dotted}={value!r}")
         node[parts[-1]] = value
-    lines = dict(document.lines)
-    return YamlDocument(document.path, document.text, content, lines)
+    origins = {".".join(parts): f"override {dotted}={value!r}" for dotted, value in overrides.items()
+               for parts in [str(dotted).split(".")]}
+    return YamlDocument(document.path, document.text, content, dict(document.lines), origins)
 
 
 def _validate_section(content, keys: dict, path: str, doc: YamlDocument) -> dict:

@@ -35,17 +35,27 @@ MAX_DEPTH = 50
 
 @dataclass(frozen=True)
 class YamlDocument:
-    """A parsed YAML file: its content, raw text and the line of each key path."""
+    """A parsed YAML file: its content, raw text and the line of each key path.
+
+    ``origins`` maps key paths set from outside the file (``--set``, ``--chains``)
+    to how they were set, so that messages blame the override, not the file.
+    """
 
     path: Path
     text: str
     content: object
     lines: dict = field(default_factory=dict)
+    origins: dict = field(default_factory=dict)
 
     def where(self, key_path: str) -> str:
-        """``file:line: key.path`` for messages; falls back to the nearest parent key."""
+        """``file:line: key.path`` for messages (``override K=V: key.path`` if set from outside);
+        falls back to the nearest parent key."""
         probe = key_path
-        while probe and probe not in self.lines:
+        while probe:
+            if probe in self.origins:
+                return f"{self.origins[probe]}: {key_path}"
+            if probe in self.lines:
+                break
             probe = probe.rsplit(".", 1)[0] if "." in probe else ""
         line = self.lines.get(probe)
         location = f"{self.path}:{line}" if line else str(self.path)
