@@ -292,8 +292,30 @@ def write_csv(path: Path, frame) -> None:
     import pyarrow as pa
     from pyarrow import csv
 
-    csv.write_csv(pa.Table.from_pandas(frame, preserve_index=False), str(path),
+    csv.write_csv(pa.Table.from_pandas(spreadsheet_safe(frame), preserve_index=False), str(path),
                   csv.WriteOptions(quoting_style="needed"))
+
+
+#: First characters that make a spreadsheet read a cell as a formula (OWASP, "CSV Injection").
+FORMULA_STARTS = ("=", "+", "-", "@", "\t", "\r")
+
+
+def spreadsheet_safe(frame):
+    """The table with every text cell that a spreadsheet would run as a formula prefixed by ``'``.
+
+    A group called ``=SUM(A1)`` or ``-3`` is written ``'=SUM(A1)``, ``'-3``; a
+    text that already starts with ``'`` gets one more, so :func:`read_csv`
+    restores every label exactly by removing one. Numbers are untouched.
+    """
+    import pandas as pd
+
+    out = frame.copy()
+    for column in out.columns:
+        values = out[column]
+        if values.dtype == object or pd.api.types.is_string_dtype(values):
+            text = values.map(lambda v: f"'{v}" if isinstance(v, str) and v.startswith(("'", *FORMULA_STARTS)) else v)
+            out[column] = text
+    return out
 
 
 def write_atomic(path: Path, text: str) -> None:
@@ -379,7 +401,12 @@ class Run:
         return self._cache[name]
 
     def _json(self, name: str):
-        return self._read(name, lambda p: json.loads(p.read_text(encoding="utf-8")))
+        def mapping(path):
+            value = json.loads(path.read_text(encoding="utf-8"))
+            if not isinstance(value, dict):
+                raise ValueError(f"it holds {type(value).__name__}, not a mapping")
+            return value
+        return self._read(name, mapping)
 
     def _csv(self, name: str):
         return self._read(name, read_csv)
@@ -514,10 +541,13 @@ def read_csv(path: Path):
         header = pd.read_csv(path, nrows=0).columns
         labels = [c for c in header if c in LABEL_COLUMNS]
         numbers = [c for c in header if c not in labels]
-        return pd.read_csv(path, dtype={c: str for c in labels}, keep_default_na=False,
-                           na_values={c: ["", "nan", "NaN", "NA"] for c in numbers})
+        table = pd.read_csv(path, dtype={c: str for c in labels}, keep_default_na=False,
+                            na_values={c: ["", "nan", "NaN", "NA"] for c in numbers})
     except (pd.errors.ParserError, pd.errors.EmptyDataError) as exc:
         raise ValueError(_first_line(exc)) from None
+    for column in labels:  # undo spreadsheet_safe
+        table[column] = table[column].map(lambda v: v[1:] if isinstance(v, str) and v.startswith("'") else v)
+    return table
 
 
 def _first_line(exc) -> str:

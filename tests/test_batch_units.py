@@ -345,9 +345,10 @@ def test_summary_escapes_user_strings_and_lists_attempts(tmp_path):
     assert 'href="jobs/a%3Cb%3E/attempt-2/report.html"' in page
     assert "qualified analyst" in page
     md = (tmp_path / "index.md").read_text()
-    row = next(line for line in md.splitlines() if line.startswith("| a<b>"))
+    assert "<b>" not in md and "<script>" not in md  # raw HTML from user strings never passes through
+    row = next(line for line in md.splitlines() if line.startswith("| a&lt;b&gt;"))
     assert row.split(" | ")[1:6] == ["passed the gate", "2", "1.003", "640", "0"]
-    assert "2. target_accept: 0.95 -> passed" in md
+    assert "2. target\\_accept: 0.95 -> passed" in md
 
 
 # ---------------------------------------------------------------- spec keys

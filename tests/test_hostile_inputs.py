@@ -130,3 +130,24 @@ def test_check_never_crashes(case):
     assert "Traceback" not in message
     if code == 2:
         assert len(message.strip().splitlines()) == 1 and message.startswith("hierwork: error: "), message
+
+
+def test_csv_cells_never_run_as_formulas_and_labels_read_back_exactly(tmp_path):
+    import pandas as pd
+
+    from hierwork.runfolder import read_csv, write_csv
+
+    labels = ["=SUM(A1)", "-3", "+1", "@cmd", "'quoted", "''=x", "\tTab", "plain", "NA", "7"]
+    write_csv(tmp_path / "t.csv", pd.DataFrame({"group": labels, "partial_mean": [-1.5] * len(labels)}))
+    cells = [line.split(",")[0].strip('"') for line in (tmp_path / "t.csv").read_text().splitlines()[1:]]
+    assert all(not c.startswith(("=", "+", "-", "@", "\t")) for c in cells)  # OWASP, "CSV Injection"
+    back = read_csv(tmp_path / "t.csv")
+    assert back["group"].tolist() == labels and back["partial_mean"].tolist() == [-1.5] * len(labels)
+
+
+def test_control_characters_never_reach_the_terminal(tmp_path, capsys):
+    (tmp_path / "d.csv").write_text("depot,y\na,1.5\na,2.5\nb,3.1\nb,2.0\n")
+    spec = _spec(tmp_path, "d.csv", 'title: "Depots \\e[2J\\e]0;owned\\a"\n')
+    assert main(["check", str(spec)]) == 0
+    out = capsys.readouterr().out
+    assert "\x1b" not in out and "\x07" not in out and "Depots \\x1b[2J\\x1b]0;owned\\x07" in out

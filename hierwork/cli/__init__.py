@@ -8,19 +8,28 @@ from __future__ import annotations
 
 import argparse
 import importlib
+import re
 import sys
 
 # Command modules, in the order ``--help`` lists them.
 COMMANDS = ("check", "fit", "demo", "schema", "batch", "status", "report", "compare", "predict")
 
 EXIT_OK, EXIT_BUG, EXIT_INPUT, EXIT_GATE = 0, 1, 2, 3
+#: Control characters other than tab and newline (escape sequences start with one).
+_CONTROL = re.compile(r"[\x00-\x08\x0b-\x1f\x7f-\x9f]")
+
+
+def printable(text) -> str:
+    """Text for the terminal: control characters from user strings (titles, labels, file names)
+    shown as ``\\xNN`` instead of acting on the terminal."""
+    return _CONTROL.sub(lambda m: f"\\x{ord(m.group()):02x}", str(text))
 
 
 class _Parser(argparse.ArgumentParser):
     """Usage mistakes are bad input too: one line, exit 2."""
 
     def error(self, message):
-        print(f"hierwork: error: {message} (see '{self.prog} --help')", file=sys.stderr)
+        print(printable(f"hierwork: error: {message} (see '{self.prog} --help')"), file=sys.stderr)
         raise SystemExit(EXIT_INPUT)
 
 
@@ -70,7 +79,7 @@ def main(argv=None) -> int:
         print(f"hierwork: stopped by {stop.name}; {stop.outcome}", file=sys.stderr)
         return stop.exit_code
     except HierworkError as exc:
-        print(f"hierwork: error: {exc}", file=sys.stderr)
+        print(printable(f"hierwork: error: {exc}"), file=sys.stderr)
         return EXIT_INPUT
     except BrokenPipeError:
         # Output piped into a program that stopped reading (e.g. `| head`): not an error.

@@ -25,13 +25,13 @@ def register(sub) -> None:
 def run(args) -> int:
     import hierwork
     from hierwork.errors import HierworkError
-    from hierwork.runfolder import write_atomic
+    from hierwork.runfolder import spreadsheet_safe, write_atomic
 
     out = Path(args.out) if args.out else None
     if out is not None and not out.parent.is_dir():
         raise HierworkError(f"folder {str(out.parent)!r} does not exist", where="--out",
                             hint="create it first or choose another path")
-    table = hierwork.predict(args.run, args.new, seed=args.seed, interval=args.interval)
+    table = spreadsheet_safe(hierwork.predict(args.run, args.new, seed=args.seed, interval=args.interval))
     if out is None:
         table.to_csv(sys.stdout, index=False)
         return 0

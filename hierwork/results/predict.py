@@ -76,10 +76,18 @@ def predict(run, new_data, seed: int | None = None, interval: float | None = Non
     run = run if isinstance(run, Run) else Run.load(run)
     if interval is not None and not 0.5 <= interval < 1:
         raise HierworkError(f"interval must be at least 0.5 and below 1, got {interval:g}", where="interval")
-    if isinstance(new_data, (str, Path)):
-        plan = run.plan or {}  # labels and levels are read as text, exactly as when fitting
-        text = [f["column"] for f in plan.get("factors", [])] + list((plan.get("design") or {}).get("levels", {}))
-        frame = read_table(Path(new_data), text)
+    plan = run.plan or {}
+    try:  # a damaged plan.json is the run folder's fault, not a bug
+        family = get_family(plan["family"])
+        factors = [SimpleNamespace(**f) for f in plan["factors"]]
+        for f in factors:
+            f.name, f.column, f.within, f.predictors  # noqa: B018  (every field predict reads)
+        design = Design.from_dict(plan["design"])
+    except (KeyError, TypeError, ValueError, AttributeError) as exc:
+        raise RunFolderError(f"plan.json is damaged (missing or malformed: {exc})", where=str(run.path / "plan.json"),
+                             hint="rerun the fit to rewrite it") from None
+    if isinstance(new_data, (str, Path)):  # labels and levels read as text, exactly as when fitting
+        frame = read_table(Path(new_data), [f.column for f in factors] + list(design.levels))
         ref = RowRef.of(str(new_data), len(frame), is_csv(Path(new_data)))
     else:
         frame = new_data.copy()
@@ -88,9 +96,6 @@ def predict(run, new_data, seed: int | None = None, interval: float | None = Non
     if frame.empty:
         raise DataError("no rows to predict", where=ref.where)
     spec, plan = run.spec, run.plan
-    family = get_family(plan["family"])
-    factors = [SimpleNamespace(**f) for f in plan["factors"]]
-    design = Design.from_dict(plan["design"])
     interval = interval or (spec.get("estimates") or {}).get("interval", 0.94)
     seed = run.seed if seed is None else seed
     outcome = spec["outcome"]
