@@ -67,11 +67,16 @@ def _raise_interrupted(signum, frame):
 
 @contextmanager
 def stop_on_signals():
-    """Within the block, SIGINT and SIGTERM raise :class:`Interrupted` (main thread only; elsewhere a no-op)."""
+    """Within the block, SIGINT and SIGTERM raise :class:`Interrupted` (main thread only; elsewhere a no-op).
+
+    A signal the process was started ignoring (SIGINT for a shell's background
+    job) stays ignored.
+    """
     if threading.current_thread() is not threading.main_thread():
         yield
         return
-    previous = {s: signal.signal(s, _raise_interrupted) for s in STOP_SIGNALS}
+    previous = {s: signal.signal(s, _raise_interrupted) for s in STOP_SIGNALS
+                if signal.getsignal(s) is not signal.SIG_IGN}
     try:
         yield
     finally:

@@ -205,7 +205,8 @@ def _spec_as_run(spec: Spec) -> str:
 
     content = dict(spec.document.content)
     content["data"] = str(spec.data_path)
-    header = (f"# spec as run by hierwork {__version__}\n# original: {spec.path} (sha256 {spec.sha256})\n")
+    original = str(spec.path).replace("\r", "\\r").replace("\n", "\\n")  # a comment stays one line
+    header = (f"# spec as run by hierwork {__version__}\n# original: {original} (sha256 {spec.sha256})\n")
     return header + yaml.safe_dump(content, sort_keys=False, allow_unicode=True)
 
 

@@ -19,17 +19,18 @@ EXIT_OK, EXIT_BUG, EXIT_INPUT, EXIT_GATE = 0, 1, 2, 3
 _CONTROL = re.compile(r"[\x00-\x08\x0b-\x1f\x7f-\x9f]")
 
 
-def printable(text) -> str:
+def printable(text, one_line: bool = False) -> str:
     """Text for the terminal: control characters from user strings (titles, labels, file names)
-    shown as ``\\xNN`` instead of acting on the terminal."""
-    return _CONTROL.sub(lambda m: f"\\x{ord(m.group()):02x}", str(text))
+    shown as ``\\xNN`` instead of acting on the terminal; with ``one_line``, line breaks as ``\\n``."""
+    text = _CONTROL.sub(lambda m: f"\\x{ord(m.group()):02x}", str(text))
+    return text.replace("\n", "\\n") if one_line else text
 
 
 class _Parser(argparse.ArgumentParser):
     """Usage mistakes are bad input too: one line, exit 2."""
 
     def error(self, message):
-        print(printable(f"hierwork: error: {message} (see '{self.prog} --help')"), file=sys.stderr)
+        print(printable(f"hierwork: error: {message} (see '{self.prog} --help')", one_line=True), file=sys.stderr)
         raise SystemExit(EXIT_INPUT)
 
 
@@ -77,9 +78,12 @@ def main(argv=None) -> int:
         return int(args.func(args) or 0)
     except Interrupted as stop:
         print(f"hierwork: stopped by {stop.name}; {stop.outcome}", file=sys.stderr)
+        import gc
+
+        gc.freeze()  # exit now: collecting the half-built sampler's objects at shutdown takes seconds
         return stop.exit_code
     except HierworkError as exc:
-        print(printable(f"hierwork: error: {exc}"), file=sys.stderr)
+        print(printable(f"hierwork: error: {exc}", one_line=True), file=sys.stderr)
         return EXIT_INPUT
     except BrokenPipeError:
         # Output piped into a program that stopped reading (e.g. `| head`): not an error.
