@@ -8,6 +8,7 @@ them for ``report``, ``compare``, ``predict``, the batch and the Python API.
 """
 from __future__ import annotations
 
+import glob
 import json
 import os
 import shutil
@@ -145,10 +146,14 @@ class Staging:
             self._lock = _locked(fresh / _LOCK)
             self.path = fresh.with_name(fresh.name.replace(_FRESH, _STAGING, 1))
             os.rename(fresh, self.path)
+            self._clear_stale()  # again, now that ours is visible: of two fits started together, one yields
         except OSError as exc:
             self._remove()
             raise RunFolderError(f"cannot write the run folder ({_first_line(exc)})", where=f"--out {self.given}",
                                  hint="choose a folder you can write to") from None
+        except BaseException:
+            self._remove()
+            raise
         return self
 
     def _clear_stale(self) -> None:
@@ -158,8 +163,10 @@ class Staging:
         aside by a forced replacement that was killed half-way is put back if
         ``out`` is missing (it is then the only copy), else removed.
         """
-        name = glob_escape(self.out.name)
+        name = glob.escape(self.out.name)
         for entry in [*self.out.parent.glob(f".{name}{_STAGING}*"), *self.out.parent.glob(f".{name}{_FRESH}*")]:
+            if entry == self.path:
+                continue
             if (entry / _LOCK).exists():
                 try:
                     _locked(entry / _LOCK).close()
@@ -204,13 +211,6 @@ class Staging:
         if self._lock is not None:
             self._lock.close()
             self._lock = None
-
-
-def glob_escape(name: str) -> str:
-    """A file name with glob's special characters made literal."""
-    import glob
-
-    return glob.escape(name)
 
 
 def _locked(path: Path):
