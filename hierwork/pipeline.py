@@ -139,6 +139,23 @@ def fit(spec, out, force: bool = False, overrides: dict | None = None, progress:
         The written run folder; ``run.passed`` tells whether the gate passed.
     """
     from hierwork import runfolder
+    from hierwork.interrupts import stop_on_signals
+
+    started = _dt.datetime.now(_dt.timezone.utc)
+    t0 = time.perf_counter()
+    out = Path(out)
+    spec = _as_spec(spec, overrides)
+    runfolder.refuse_existing(out, force)
+    with stop_on_signals():
+        report = check(spec)
+        with runfolder.Staging(out, force) as stage:  # reserved before sampling: a clash fails now
+            stage.write(_run_contents(spec, report, out, overrides, command, started, t0, progress))
+    return runfolder.Run.load(out)
+
+
+def _run_contents(spec, report, out, overrides, command, started, t0, progress) -> dict:
+    """Sample, gate and estimate: every file of the run folder, in memory."""
+    from hierwork import runfolder
     from hierwork.inference.gate import evaluate_gate
     from hierwork.report.publish import write_report
     from hierwork.results import loo, predictive
@@ -147,12 +164,6 @@ def fit(spec, out, force: bool = False, overrides: dict | None = None, progress:
     from hierwork.results.pooling import pooling_factors
     from hierwork.results.sensitivity import sensitivity_table
 
-    started = _dt.datetime.now(_dt.timezone.utc)
-    t0 = time.perf_counter()
-    out = Path(out)
-    spec = _as_spec(spec, overrides)
-    runfolder.refuse_existing(out, force)
-    report = check(spec)
     plan, settings = report.plan, spec.sampling
     idata = sample_posterior(report, progress)
     gate = evaluate_gate(idata, spec.gate, settings["max_treedepth"])
@@ -187,8 +198,7 @@ def fit(spec, out, force: bool = False, overrides: dict | None = None, progress:
         },
         "report": write_report,
     })
-    runfolder.write_run(out, force, contents)
-    return runfolder.Run.load(out)
+    return contents
 
 
 def _spec_as_run(spec: Spec) -> str:
@@ -197,7 +207,8 @@ def _spec_as_run(spec: Spec) -> str:
 
     content = dict(spec.document.content)
     content["data"] = str(spec.data_path)
-    header = (f"# spec as run by hierwork {__version__}\n# original: {spec.path} (sha256 {spec.sha256})\n")
+    original = str(spec.path).replace("\r", "\\r").replace("\n", "\\n")  # a comment stays one line
+    header = (f"# spec as run by hierwork {__version__}\n# original: {original} (sha256 {spec.sha256})\n")
     return header + yaml.safe_dump(content, sort_keys=False, allow_unicode=True)
 
 

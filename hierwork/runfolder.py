@@ -8,11 +8,12 @@ them for ``report``, ``compare``, ``predict``, the batch and the Python API.
 """
 from __future__ import annotations
 
+import glob
 import json
 import os
 import shutil
+import time
 import uuid
-from contextlib import contextmanager
 from dataclasses import dataclass, field
 from functools import cached_property
 from pathlib import Path
@@ -59,42 +60,186 @@ LABEL_COLUMNS = ("factor", "group", "term", "parameter", "model", "group_a", "gr
 
 # --------------------------------------------------------------------------- writing
 
-def refuse_existing(out: Path, force: bool) -> None:
-    """Raise before any work if ``out`` exists and may not be replaced."""
-    if out.exists() and not force:
-        raise RunFolderError(f"output folder {str(out)!r} already exists",
-                             hint="choose another --out, or add --force to replace it once the new run is complete")
-    if out.exists() and not out.is_dir():
-        raise RunFolderError(f"output path {str(out)!r} exists and is not a folder", hint="choose another --out")
+#: Hidden siblings of ``out``: ``.NAME.tmp-ID`` while a fit writes, ``.NAME.new-ID`` for an instant
+#: before (locked, then renamed), ``.NAME.old-ID`` while a forced run replaces the old one.
+_STAGING, _FRESH, _OLD = ".tmp-", ".new-", ".old-"
+_LOCK = ".lock"
 
 
-@contextmanager
-def staged_folder(out: Path, force: bool):
-    """Yield a temporary folder; on success move it to ``out`` (replacing it if ``force``).
+def destination(out) -> Path:
+    """``out`` as an absolute, normalised path (``.`` and ``..`` resolved, symlinks kept)."""
+    return Path(os.path.abspath(os.fspath(out)))
 
-    On any exception the temporary folder is removed and ``out`` is untouched.
-    """
-    out = Path(out)
-    refuse_existing(out, force)
-    out.parent.mkdir(parents=True, exist_ok=True)
-    tmp = out.parent / f".{out.name}.tmp-{uuid.uuid4().hex[:8]}"
-    tmp.mkdir()
+
+def is_run_folder(path: Path) -> bool:
+    """Whether ``path`` is a hierwork run folder: its ``provenance.json`` names the run format."""
     try:
-        yield tmp
+        provenance = json.loads((Path(path) / "provenance.json").read_text(encoding="utf-8"))
+    except (OSError, ValueError, UnicodeDecodeError):
+        return False
+    return isinstance(provenance, dict) and str(provenance.get("format", "")).startswith("hierwork-run/")
+
+
+def refuse_existing(out: Path, force: bool) -> None:
+    """Raise before any work if ``out`` cannot receive a run folder.
+
+    Refused: an existing ``out`` without ``force``; with ``force``, anything
+    but a hierwork run folder, and the current folder or one containing it;
+    a path under a file; a location this process cannot write.
+    """
+    given, out = str(out), destination(out)
+    if out.exists() or out.is_symlink():
+        if not force:
+            raise RunFolderError(f"output folder {given!r} already exists",
+                                 hint="choose another --out, or add --force to replace it once the new run is complete")
+        if not out.is_dir():
+            raise RunFolderError(f"output path {given!r} exists and is not a folder", hint="choose another --out")
+        if not is_run_folder(out):
+            raise RunFolderError(f"--force replaces run folders only, and {given!r} is not one "
+                                 "(it has no provenance.json of a hierwork run)",
+                                 hint="choose another --out, or move that folder away yourself")
+        cwd = destination(os.getcwd())
+        if cwd == out or out in cwd.parents:
+            raise RunFolderError(f"--force would replace {given!r}, which holds the current folder",
+                                 hint="run from outside it, or choose another --out")
+    parent = out.parent
+    while not parent.exists():
+        if parent.is_symlink():
+            raise RunFolderError(f"output path {given!r} lies under a broken symbolic link {str(parent)!r}",
+                                 hint="choose another --out")
+        parent = parent.parent
+    if not parent.is_dir():
+        raise RunFolderError(f"output path {given!r} lies under {str(parent)!r}, which is a file, not a folder",
+                             hint="choose another --out")
+    if not os.access(parent, os.W_OK | os.X_OK):
+        raise RunFolderError(f"cannot write under {str(parent)!r} (read-only or no permission)",
+                             where=f"--out {given}", hint="choose a folder you can write to")
+
+
+class Staging:
+    """The hidden folder a run is assembled in, reserved before sampling.
+
+    Reserving it proves the destination writable and takes an exclusive lock
+    (``flock``, released by the system when the process dies, however it dies):
+    a second fit into the same ``out`` fails at once instead of after sampling,
+    and staging folders whose lock nobody holds (left by a killed fit) are
+    removed. On leaving the ``with`` block without :meth:`write`, the folder is
+    removed.
+    """
+
+    def __init__(self, out, force: bool):
+        self.given = str(out)
+        self.out = destination(out)
+        self.force = force
+        self.path: Path | None = None
+        self._lock = None
+
+    def __enter__(self) -> "Staging":
+        try:
+            self._clear_stale()
+        except OSError:  # tidying is best effort; writing below reports a real problem
+            pass
+        refuse_existing(self.out, self.force)
+        try:
+            self.out.parent.mkdir(parents=True, exist_ok=True)
+            fresh = self.out.parent / f".{self.out.name}{_FRESH}{uuid.uuid4().hex[:8]}"
+            fresh.mkdir()
+            self._lock = _locked(fresh / _LOCK)
+            self.path = fresh.with_name(fresh.name.replace(_FRESH, _STAGING, 1))
+            os.rename(fresh, self.path)
+            self._clear_stale()  # again, now that ours is visible: of two fits started together, one yields
+        except OSError as exc:
+            self._remove()
+            raise RunFolderError(f"cannot write the run folder ({_first_line(exc)})", where=f"--out {self.given}",
+                                 hint="choose a folder you can write to") from None
+        except BaseException:
+            self._remove()
+            raise
+        return self
+
+    def _clear_stale(self) -> None:
+        """Tidy what killed fits left beside ``out``; refuse if a live fit is writing there.
+
+        A staging folder whose lock nobody holds is removed. An old run set
+        aside by a forced replacement that was killed half-way is put back if
+        ``out`` is missing (it is then the only copy), else removed.
+        """
+        name = glob.escape(self.out.name)
+        for entry in [*self.out.parent.glob(f".{name}{_STAGING}*"), *self.out.parent.glob(f".{name}{_FRESH}*")]:
+            if entry == self.path:
+                continue
+            if (entry / _LOCK).exists():
+                try:
+                    _locked(entry / _LOCK).close()
+                except BlockingIOError:
+                    raise RunFolderError(f"another fit is writing to {self.given!r} now",
+                                         hint="wait for it to finish, or choose another --out") from None
+            elif _FRESH in entry.name and time.time() - entry.stat().st_mtime < 60:
+                continue  # created an instant ago by a fit about to lock it
+            shutil.rmtree(entry, ignore_errors=True)
+        for entry in sorted(self.out.parent.glob(f".{name}{_OLD}*"), key=lambda e: e.stat().st_mtime):
+            if not self.out.exists() and is_run_folder(entry):
+                os.rename(entry, self.out)
+            else:
+                shutil.rmtree(entry, ignore_errors=True)
+
+    def write(self, contents: dict) -> None:
+        """Write every file into the staging folder, then rename it into place (see :func:`write_run`)."""
+        try:
+            _write_contents(self.path, contents)
+        except OSError as exc:
+            raise RunFolderError(f"cannot write the run folder ({_first_line(exc)})", where=f"--out {self.given}",
+                                 hint="free some space or choose another --out; nothing was published") from None
+        from hierwork.interrupts import Interrupted, signals_deferred
+
+        try:
+            with signals_deferred():
+                publish(self.path, self.out, self.force)
+                self.path = None
+                (self.out / _LOCK).unlink(missing_ok=True)
+        except Interrupted as stop:
+            if self.path is None:
+                stop.outcome = f"the run folder {self.given!r} had been written completely"
+            raise
+
+    def __exit__(self, *exc) -> None:
+        self._remove()
+
+    def _remove(self) -> None:
+        if self.path is not None:
+            shutil.rmtree(self.path, ignore_errors=True)
+            self.path = None
+        if self._lock is not None:
+            self._lock.close()
+            self._lock = None
+
+
+def _locked(path: Path):
+    """Open ``path`` (created if needed) holding an exclusive lock; BlockingIOError if another holds it."""
+    import fcntl
+
+    handle = open(path, "a+b")
+    try:
+        fcntl.flock(handle, fcntl.LOCK_EX | fcntl.LOCK_NB)
     except BaseException:
-        shutil.rmtree(tmp, ignore_errors=True)
+        handle.close()
         raise
-    publish(tmp, out, force)
+    return handle
 
 
 def publish(tmp: Path, out: Path, force: bool) -> None:
-    """Rename a finished folder into place, replacing ``out`` only if ``force``."""
+    """Rename a finished folder into place, replacing ``out`` only if ``force`` (old one kept until then)."""
     old = None
     if out.exists():
         refuse_existing(out, force)
-        old = out.parent / f".{out.name}.old-{uuid.uuid4().hex[:8]}"
+        old = out.parent / f".{out.name}{_OLD}{uuid.uuid4().hex[:8]}"
         os.rename(out, old)
-    os.rename(tmp, out)
+    try:
+        os.rename(tmp, out)
+    except BaseException:
+        if old is not None:
+            os.rename(old, out)
+        raise
     if old is not None:
         shutil.rmtree(old, ignore_errors=True)
 
@@ -106,22 +251,26 @@ def write_run(out, force: bool, contents: dict) -> None:
     (JSON), text, an InferenceData (NetCDF), or a callable ``(folder) -> None``
     run last, once every other file is in the staging folder (the report).
     """
-    with staged_folder(Path(out), force) as tmp:
-        last = []
-        for name, content in contents.items():
-            if callable(content):
-                last.append(content)
-            elif hasattr(content, "to_netcdf"):
-                # Uncompressed: zlib saves about 5% on posterior draws and costs ten times the write time.
-                content.to_netcdf(str(tmp / name), engine="h5netcdf", compress=False)
-            elif hasattr(content, "to_csv"):
-                write_csv(tmp / name, content)
-            elif isinstance(content, dict):
-                write_json(tmp / name, content)
-            else:
-                (tmp / name).write_text(str(content), encoding="utf-8")
-        for step in last:
-            step(tmp)
+    with Staging(out, force) as stage:
+        stage.write(contents)
+
+
+def _write_contents(tmp: Path, contents: dict) -> None:
+    last = []
+    for name, content in contents.items():
+        if callable(content):
+            last.append(content)
+        elif hasattr(content, "to_netcdf"):
+            # Uncompressed: zlib saves about 5% on posterior draws and costs ten times the write time.
+            content.to_netcdf(str(tmp / name), engine="h5netcdf", compress=False)
+        elif hasattr(content, "to_csv"):
+            write_csv(tmp / name, content)
+        elif isinstance(content, dict):
+            write_json(tmp / name, content)
+        else:
+            (tmp / name).write_text(str(content), encoding="utf-8")
+    for step in last:
+        step(tmp)
 
 
 def write_json(path: Path, data) -> None:
@@ -144,8 +293,30 @@ def write_csv(path: Path, frame) -> None:
     import pyarrow as pa
     from pyarrow import csv
 
-    csv.write_csv(pa.Table.from_pandas(frame, preserve_index=False), str(path),
+    csv.write_csv(pa.Table.from_pandas(spreadsheet_safe(frame), preserve_index=False), str(path),
                   csv.WriteOptions(quoting_style="needed"))
+
+
+#: First characters that make a spreadsheet read a cell as a formula (OWASP, "CSV Injection").
+FORMULA_STARTS = ("=", "+", "-", "@", "\t", "\r")
+
+
+def spreadsheet_safe(frame):
+    """The table with every text cell that a spreadsheet would run as a formula prefixed by ``'``.
+
+    A group called ``=SUM(A1)`` or ``-3`` is written ``'=SUM(A1)``, ``'-3``; a
+    text that already starts with ``'`` gets one more, so :func:`read_csv`
+    restores every label exactly by removing one. Numbers are untouched.
+    """
+    import pandas as pd
+
+    out = frame.copy()
+    for column in out.columns:
+        values = out[column]
+        if values.dtype == object or pd.api.types.is_string_dtype(values):
+            text = values.map(lambda v: f"'{v}" if isinstance(v, str) and v.startswith(("'", *FORMULA_STARTS)) else v)
+            out[column] = text
+    return out
 
 
 def write_atomic(path: Path, text: str) -> None:
@@ -231,7 +402,12 @@ class Run:
         return self._cache[name]
 
     def _json(self, name: str):
-        return self._read(name, lambda p: json.loads(p.read_text(encoding="utf-8")))
+        def mapping(path):
+            value = json.loads(path.read_text(encoding="utf-8"))
+            if not isinstance(value, dict):
+                raise ValueError(f"it holds {type(value).__name__}, not a mapping")
+            return value
+        return self._read(name, mapping)
 
     def _csv(self, name: str):
         return self._read(name, read_csv)
@@ -370,10 +546,13 @@ def read_csv(path: Path):
         header = pd.read_csv(path, nrows=0).columns
         labels = [c for c in header if c in LABEL_COLUMNS]
         numbers = [c for c in header if c not in labels]
-        return pd.read_csv(path, dtype={c: str for c in labels}, keep_default_na=False,
-                           na_values={c: ["", "nan", "NaN", "NA"] for c in numbers})
+        table = pd.read_csv(path, dtype={c: str for c in labels}, keep_default_na=False,
+                            na_values={c: ["", "nan", "NaN", "NA"] for c in numbers})
     except (pd.errors.ParserError, pd.errors.EmptyDataError) as exc:
         raise ValueError(_first_line(exc)) from None
+    for column in labels:  # undo spreadsheet_safe
+        table[column] = table[column].map(lambda v: v[1:] if isinstance(v, str) and v.startswith("'") else v)
+    return table
 
 
 def _first_line(exc) -> str:

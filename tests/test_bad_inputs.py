@@ -77,3 +77,13 @@ def test_usage_error_exits_2(capsys):
         main(["fit"])
     code = exc.value.code
     assert code == 2
+    err = capsys.readouterr().err
+    assert err == "hierwork: error: the following arguments are required: spec, --out (see 'hierwork fit --help')\n"
+
+
+def test_override_errors_name_the_override(tmp_path, capsys):
+    spec = tmp_path / "spec.yaml"
+    spec.write_text(f"format: hierwork/1\nname: ok\ndata: {CORPUS / 'plots.csv'}\noutcome: {{column: yield}}\n"
+                    "groups: {site: {}}\nsampling: {chains: 2}\n")
+    assert main(["check", str(spec), "--chains", "0"]) == 2
+    assert capsys.readouterr().err.startswith("hierwork: error: override sampling.chains=0: sampling.chains: 0 is out")

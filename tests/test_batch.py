@@ -7,6 +7,7 @@ import signal
 import pytest
 
 from hierwork.cli import main
+from hierwork.report.markdown import md_escape
 
 from batchkit import (assert_run_folders_sound, batch_state, chain_processes, fit_process, hierwork,
                       kill_session, line_output, pid_alive, process, running_attempt, start_batch, wait_for)
@@ -98,7 +99,7 @@ def test_centred_funnel_is_rescued_by_the_remedies_and_attempts_are_kept(tmp_pat
     assert json.loads((out / "jobs/funnel/attempt-3/plan.json").read_text())["factors"][0][
         "parameterisation"] == "non_centred"
     md = (out / "index.md").read_text()
-    assert re.search(r"^2\. target_accept: 0.95 \(failed: .*divergences.*\) -> failed", md, re.M)
+    assert re.search(r"^2\. target\\_accept: 0.95 \(failed: .*divergences.*\) -> failed", md, re.M)
     assert re.search(r"^3\. parameterisation \(failed: .*\) -> passed", md, re.M)
     status = hierwork("status", out)
     assert status.returncode == 0
@@ -123,7 +124,7 @@ def test_bad_data_fails_its_job_with_its_message_and_the_others_finish(tmp_path)
     message = check.stderr.strip().splitlines()[-1]
     page = (out / "index.html").read_text()
     md = (out / "index.md").read_text()
-    assert "bad input" in page and message.replace("|", "\\|") in md
+    assert "bad input" in page and md_escape(message) in md
     assert_run_folders_sound(out)
 
 
@@ -156,7 +157,8 @@ def test_dry_run_validates_each_variant_like_fit(tmp_path, capsys):
     assert code == 0
     assert stdout.splitlines()[1].startswith("  crop.ok  from ")
     assert stdout.splitlines()[2] == (
-        f"  crop.typo  [cannot run: {spec}:6: groups.line.parameterisation: 'centered' is not allowed "
+        "  crop.typo  [cannot run: override groups.line.parameterisation='centered': "
+        "groups.line.parameterisation: 'centered' is not allowed "
         "(did you mean 'centred'? valid: 'auto', 'centred', 'non_centred')]")
 
 

@@ -204,6 +204,34 @@ def test_unreadable_spec_becomes_an_invalid_job_and_duplicates_are_refused(tmp_p
 
 
 # ---------------------------------------------------------------- queue
+def test_complete_attempt_left_unrecorded_is_adopted_not_rerun(tmp_path):
+    """Killed after the run folder was renamed into place, before the queue recorded it."""
+    from hierwork import runfolder
+    from hierwork.batch.progress import batch_status
+    from hierwork.batch.runner import adopt
+
+    q = Queue(tmp_path, create=True)
+    q.upsert_job("a", 0, "a.yaml", {}, "s1", "d1")
+    q.start_attempt("a", 1, {}, None, 0, "jobs/a/attempt-1")
+    q.upsert_job("b", 1, "b.yaml", {}, "s1", "d1")
+    q.start_attempt("b", 1, {}, None, 0, "jobs/b/attempt-1")
+    q.close()
+    status = batch_status(tmp_path)  # its batch process is gone: nothing reads as running
+    assert "2 jobs: 2 interrupted" in status and "running" not in status.replace("not running", "")
+    run = tmp_path / "jobs" / "a" / "attempt-1"
+    run.mkdir(parents=True)
+    for name in runfolder.REQUIRED_FILES:
+        (run / name).write_text("x")
+    (run / "provenance.json").write_text(json.dumps({"format": runfolder.RUN_FORMAT}))
+    (run / "diagnostics.json").write_text(json.dumps(FUNNEL))
+    q = Queue(tmp_path)
+    stale = {a["job"]: a for a in q.interrupt_stale()}
+    assert adopt(tmp_path, q, stale["a"]) == "failed"
+    assert adopt(tmp_path, q, stale["b"]) is None  # no folder: it runs again
+    assert q.upsert_job("a", 0, "a.yaml", {}, "s1", "d1") == "resume"
+    assert [(a["number"], a["status"], a["exit_code"]) for a in q.attempts("a")] == [(1, "failed", 3)]
+    assert q.attempts("a")[0]["message"].startswith("r_hat 1.021 > 1.01")
+
 def test_queue_resume_rules(tmp_path):
     q = Queue(tmp_path, create=True)
     assert q.upsert_job("a", 0, "a.yaml", {}, "s1", "d1") == "fresh"
@@ -263,7 +291,30 @@ def test_outcome_trusts_exit_code_only_with_matching_diagnostics(tmp_path):
     failed = child.outcome(3, run, log)
     assert failed.status == "failed"
     assert failed.message == "r_hat 1.021 > 1.01 (plot__coef[p5, intercept]); divergences 7 > 0 (plot__sd[intercept])"
-    assert child.outcome(-9, run, log).message == "fit was killed by signal 9"
+    assert child.outcome(-9, run, log).message == \
+        "fit was killed by SIGKILL (signal 9) (by the out-of-memory killer, or by hand)"
+    assert child.outcome(-15, run, log).message == "fit was killed by SIGTERM (signal 15)"
+
+
+def test_guard_mirrors_a_kill_9_and_ends_what_the_fit_left(tmp_path):
+    """A fit killed by the out-of-memory killer (SIGKILL): no OSError from the guard, no orphan left."""
+    import os
+    import time
+
+    import psutil
+
+    pid_file = tmp_path / "orphan.pid"
+    script = ("import os, signal, subprocess, sys; "
+              "p = subprocess.Popen([sys.executable, '-c', 'import time; time.sleep(60)']); "
+              f"open({str(pid_file)!r}, 'w').write(str(p.pid)); os.kill(os.getpid(), signal.SIGKILL)")
+    guard = subprocess.run([sys.executable, child.GUARD, str(os.getpid()), sys.executable, "-c", script],
+                           capture_output=True, text=True, timeout=60, start_new_session=True)
+    assert guard.returncode == -9 and guard.stderr == ""
+    orphan = int(pid_file.read_text())
+    deadline = time.monotonic() + 10
+    while psutil.pid_exists(orphan) and psutil.Process(orphan).status() != psutil.STATUS_ZOMBIE:
+        assert time.monotonic() < deadline, "the fit's leftover process still runs"
+        time.sleep(0.1)
 
 
 def test_fit_command_passes_overrides_as_yaml_readable_values():
@@ -294,9 +345,10 @@ def test_summary_escapes_user_strings_and_lists_attempts(tmp_path):
     assert 'href="jobs/a%3Cb%3E/attempt-2/report.html"' in page
     assert "qualified analyst" in page
     md = (tmp_path / "index.md").read_text()
-    row = next(line for line in md.splitlines() if line.startswith("| a<b>"))
+    assert "<b>" not in md and "<script>" not in md  # raw HTML from user strings never passes through
+    row = next(line for line in md.splitlines() if line.startswith("| a&lt;b&gt;"))
     assert row.split(" | ")[1:6] == ["passed the gate", "2", "1.003", "640", "0"]
-    assert "2. target_accept: 0.95 -> passed" in md
+    assert "2. target\\_accept: 0.95 -> passed" in md
 
 
 # ---------------------------------------------------------------- spec keys

@@ -6,6 +6,7 @@ Values are checked by the external tests; here we check the pipeline's contract.
 from __future__ import annotations
 
 import json
+import shutil
 from pathlib import Path
 
 import numpy as np
@@ -115,11 +116,12 @@ def test_gate_failure_exits_3_and_marks_every_output(rail_run, tmp_path, capsys)
 
 def test_force_replaces_only_after_success(rail_run, tmp_path, capsys):
     out = tmp_path / "run"
-    out.mkdir()
+    shutil.copytree(rail_run.path, out)
     (out / "old.txt").write_text("old")
     code = main(["fit", str(rail_run.path / "spec.yaml"), "--out", str(out), "--force", "--quiet"])
     assert code in (0, 3)
     assert not (out / "old.txt").exists() and (out / "posterior.nc").exists()
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["run"]  # no staging or old folder left
 
 
 def test_run_load_rejects_incomplete_folder(tmp_path):

@@ -119,10 +119,20 @@ def outcome(exit_code: int | None, run_dir, log_path) -> Outcome:
         return Outcome(status, exit_code, None if status == "passed" else gate_message(diagnostics),
                        diagnostics)
     if exit_code is not None and exit_code < 0:
-        message = f"fit was killed by signal {-exit_code}"
+        message = f"fit was killed by {signal_name(-exit_code)}"
+        if -exit_code == signal.SIGKILL:
+            message += " (by the out-of-memory killer, or by hand)"
     else:
         message = last_line(log_path) or f"fit exited with code {exit_code}"
     return Outcome(status, exit_code, message, None)
+
+
+def signal_name(signum: int) -> str:
+    """``SIGKILL (signal 9)``, or ``signal 64`` for a number with no name."""
+    try:
+        return f"{signal.Signals(signum).name} (signal {signum})"
+    except ValueError:
+        return f"signal {signum}"
 
 
 def read_diagnostics(run_dir) -> dict | None:

@@ -24,8 +24,11 @@ def main(argv: list[str]) -> int:
     if os.getppid() != parent:  # the parent died before the death signal was armed
         return 1
     code = subprocess.call(command)
-    if code < 0:  # mirror a death by signal
-        signal.signal(-code, signal.SIG_DFL)
+    signal.signal(signal.SIGTERM, signal.SIG_IGN)
+    os.killpg(0, signal.SIGTERM)  # anything the fit left in the group (its chains, if it was killed)
+    if code < 0:  # mirror a death by signal (SIGKILL, e.g. from the out-of-memory killer, has no handler to reset)
+        if -code not in (signal.SIGKILL, signal.SIGSTOP):
+            signal.signal(-code, signal.SIG_DFL)
         os.kill(os.getpid(), -code)
     return code
 

@@ -71,14 +71,18 @@ def eta_seconds(jobs: list[dict], slots: int, now: float | None = None) -> float
     return left / max(1, slots)
 
 
-def status_lines(queue: Queue, width: int = 100) -> list[str]:
-    """Counts, estimated time left and one line per running attempt."""
-    jobs = queue.jobs()
+def status_lines(queue: Queue, width: int = 100, live: bool = True) -> list[str]:
+    """Counts, estimated time left and one line per running attempt.
+
+    With ``live`` False (no batch process owns the queue: it was killed), jobs
+    the queue still lists as running are shown as interrupted.
+    """
+    jobs = queue.jobs() if live else as_stopped(queue.jobs())
     tally = ", ".join(f"{n} {status}" for status, n in counts(jobs).items()) or "no jobs"
     eta = eta_seconds(jobs, queue.meta("slots", 1))
     lines = [f"{jobs_text(len(jobs))}: {tally}" + (f"; about {duration(eta)} left" if eta is not None else "")]
     now = time.time()
-    for attempt in queue.running():
+    for attempt in queue.running() if live else []:
         where = f" on {attempt['worker']}" if attempt["worker"] not in (None, "local") else ""
         head = f"  {attempt['job']} attempt {attempt['number']}{where}, {duration(now - attempt['started'])}"
         last = last_output(queue.dir / f"{attempt['run_dir']}.log")
@@ -98,8 +102,8 @@ def batch_status(batch_dir) -> str:
     try:
         owner = queue.running_owner()
         lines = [f"batch {batch_dir}: " + (f"running (pid {owner['pid']})" if owner else "not running")]
-        lines += status_lines(queue)
-        jobs = queue.jobs()
+        lines += status_lines(queue, live=owner is not None)
+        jobs = queue.jobs() if owner else as_stopped(queue.jobs())
         width = max([len(j["name"]) for j in jobs] + [3])
         lines += ["", f"{'job':<{width}}  {'status':<11}  attempts  {'time':>7}  note"]
         now = time.time()
@@ -110,6 +114,11 @@ def batch_status(batch_dir) -> str:
     finally:
         queue.close()
     return "\n".join(lines)
+
+
+def as_stopped(jobs: list[dict]) -> list[dict]:
+    """Jobs of a batch whose process is gone: ``running`` ones read as ``interrupted``."""
+    return [dict(j, status="interrupted") if j["status"] == "running" else j for j in jobs]
 
 
 def last_output(log_path: Path) -> str | None:

@@ -87,7 +87,10 @@ def run_jobs(batch_dir, jobs: list[JobDef], executor, slots: int, sources: list[
         queue.set_meta("sources", sources)
         queue.set_meta("slots", slots)
         for stale in queue.interrupt_stale():
-            log.write(f"{stale['job']}: attempt {stale['number']} was interrupted; it will run again")
+            adopted = adopt(batch_dir, queue, stale)
+            log.write(f"{stale['job']}: attempt {stale['number']} " + (
+                f"had finished before the batch stopped; recorded as {adopted}" if adopted
+                else "was interrupted; it will run again"))
         loop = _Loop(batch_dir, queue, executor, log, view)
         loop.prepare(jobs)
         loop.run()
@@ -150,7 +153,8 @@ class _Loop:
                     self.view.refresh()
         except KeyboardInterrupt:
             self.executor.close()
-            self.queue.interrupt_stale()
+            for stale in self.queue.interrupt_stale():
+                adopt(self.dir, self.queue, stale)
             self.log.write("batch stopped; resume it with 'hierwork batch --resume'")
             raise
         finally:
@@ -230,6 +234,27 @@ def _planned_forms(path: Path) -> dict:
     if isinstance(factors, dict):
         factors = [{"name": k, **v} for k, v in factors.items()]
     return {f["name"]: f["parameterisation"] for f in factors if "name" in f and "parameterisation" in f}
+
+
+def adopt(batch_dir: Path, queue: Queue, attempt: dict) -> str | None:
+    """Record an interrupted attempt whose run folder is complete (the batch died just after it
+    was renamed into place); return its status, or None if it must run again."""
+    from hierwork.batch import child
+    from hierwork.runfolder import Run
+
+    run_dir = Path(batch_dir) / attempt["run_dir"]
+    diagnostics = child.read_diagnostics(run_dir)
+    try:
+        Run.load(run_dir)
+    except HierworkError:
+        return None
+    if diagnostics is None:
+        return None
+    code = 0 if diagnostics["passed"] else 3
+    outcome = child.outcome(code, run_dir, run_dir.with_name(f"{run_dir.name}.log"))
+    queue.finish_attempt(attempt["job"], attempt["number"], outcome.status, code, outcome.message,
+                         outcome.diagnostics)
+    return outcome.status
 
 
 def _raise_stopped(signum, frame):

@@ -109,7 +109,10 @@ def render_markdown(batch_dir: Path, queue: Queue) -> str:
 
 
 def _md(text) -> str:
-    return " ".join(str(text).split()).replace("|", "\\|")
+    """User text in Markdown: HTML and Markdown syntax escaped, as in summary.md."""
+    from hierwork.report.markdown import md_escape
+
+    return md_escape(text)
 
 
 def render_html(batch_dir: Path, queue: Queue) -> str:

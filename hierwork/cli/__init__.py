@@ -8,20 +8,29 @@ from __future__ import annotations
 
 import argparse
 import importlib
+import re
 import sys
 
 # Command modules, in the order ``--help`` lists them.
 COMMANDS = ("check", "fit", "demo", "schema", "batch", "status", "report", "compare", "predict", "poststratify")
 
 EXIT_OK, EXIT_BUG, EXIT_INPUT, EXIT_GATE = 0, 1, 2, 3
+#: Control characters other than tab and newline (escape sequences start with one).
+_CONTROL = re.compile(r"[\x00-\x08\x0b-\x1f\x7f-\x9f]")
+
+
+def printable(text, one_line: bool = False) -> str:
+    """Text for the terminal: control characters from user strings (titles, labels, file names)
+    shown as ``\\xNN`` instead of acting on the terminal; with ``one_line``, line breaks as ``\\n``."""
+    text = _CONTROL.sub(lambda m: f"\\x{ord(m.group()):02x}", str(text))
+    return text.replace("\n", "\\n") if one_line else text
 
 
 class _Parser(argparse.ArgumentParser):
     """Usage mistakes are bad input too: one line, exit 2."""
 
     def error(self, message):
-        self.print_usage(sys.stderr)
-        print(f"hierwork: error: {message}", file=sys.stderr)
+        print(printable(f"hierwork: error: {message} (see '{self.prog} --help')", one_line=True), file=sys.stderr)
         raise SystemExit(EXIT_INPUT)
 
 
@@ -63,11 +72,18 @@ def main(argv=None) -> int:
         parser.print_help()
         return EXIT_INPUT
     from hierwork.errors import HierworkError
+    from hierwork.interrupts import Interrupted
 
     try:
         return int(args.func(args) or 0)
+    except Interrupted as stop:
+        print(f"hierwork: stopped by {stop.name}; {stop.outcome}", file=sys.stderr)
+        import gc
+
+        gc.freeze()  # exit now: collecting the half-built sampler's objects at shutdown takes seconds
+        return stop.exit_code
     except HierworkError as exc:
-        print(f"hierwork: error: {exc}", file=sys.stderr)
+        print(printable(f"hierwork: error: {exc}", one_line=True), file=sys.stderr)
         return EXIT_INPUT
     except BrokenPipeError:
         # Output piped into a program that stopped reading (e.g. `| head`): not an error.

@@ -3,6 +3,7 @@ from __future__ import annotations
 
 import json
 
+from . import printable
 from .options import add_override_options, overrides_from
 
 
@@ -20,7 +21,7 @@ def run(args) -> int:
     import hierwork
 
     report = hierwork.check(args.spec, overrides_from(args))
-    print(json.dumps(report.to_dict(), indent=2) if args.json else report.text())
+    print(json.dumps(report.to_dict(), indent=2) if args.json else printable(report.text()))
     if args.prior_predictive:
         print("\n" + report.prior_predictive_text())
     if not args.json:

@@ -3,6 +3,8 @@ from __future__ import annotations
 
 from pathlib import Path
 
+from . import printable
+
 
 def register(sub) -> None:
     p = sub.add_parser("compare", help="spec, estimate and diagnostics changes between two runs",
@@ -21,7 +23,7 @@ def run(args) -> int:
     from hierwork.runfolder import write_atomic
 
     comparison = hierwork.compare_runs(args.run_a, args.run_b)
-    print(comparison.text(), end="")
+    print(printable(comparison.text()), end="")
     if args.html:
         out = Path(args.html)
         if not out.parent.is_dir():

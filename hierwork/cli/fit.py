@@ -3,7 +3,7 @@ from __future__ import annotations
 
 import sys
 
-from . import EXIT_GATE, EXIT_OK
+from . import EXIT_GATE, EXIT_OK, printable
 from .options import add_override_options, overrides_from
 
 
@@ -23,7 +23,7 @@ def run(args) -> int:
 
     result = hierwork.fit(args.spec, out=args.out, force=args.force, overrides=overrides_from(args),
                           progress=False if args.quiet else None)
-    print(f"run folder: {result.path}")
+    print(printable(f"run folder: {result.path}"))
     for check in result.diagnostics["checks"]:
         mark = "ok  " if check["passed"] else "FAIL"
         where = f"  (worst: {check['worst_parameter']})" if check["worst_parameter"] and not check["passed"] else ""

@@ -58,9 +58,13 @@ def output_path(args) -> Path | None:
 
 
 def write_table(table, out: Path | None) -> bool:
-    """Write ``table`` as CSV to ``out`` atomically, or to standard output; whether a file was written."""
-    from hierwork.runfolder import write_atomic
+    """Write ``table`` as CSV to ``out`` atomically, or to standard output; whether a file was written.
 
+    Cells that a spreadsheet would run as a formula are neutralised (:func:`hierwork.runfolder.spreadsheet_safe`).
+    """
+    from hierwork.runfolder import spreadsheet_safe, write_atomic
+
+    table = spreadsheet_safe(table)
     if out is None:
         table.to_csv(sys.stdout, index=False)
         return False

@@ -1,6 +1,8 @@
 """``hierwork report RUN``: rebuild report.html and summary.md in a run folder."""
 from __future__ import annotations
 
+from . import printable
+
 
 def register(sub) -> None:
     p = sub.add_parser("report", help="rebuild report.html and summary.md of a run folder",
@@ -17,5 +19,5 @@ def run(args) -> int:
     written = hierwork.write_report(args.run)
     for path in written.paths.values():
         print(f"wrote {path}")
-    print(written.headline)
+    print(printable(written.headline))
     return EXIT_GATE if written.status == "failed" else EXIT_OK

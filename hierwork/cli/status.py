@@ -1,6 +1,8 @@
 """``hierwork status BATCH_DIR``: a batch's progress and every job's state, from any terminal."""
 from __future__ import annotations
 
+from . import printable
+
 
 def register(sub) -> None:
     p = sub.add_parser("status", help="show a batch's progress and its jobs")
@@ -11,5 +13,5 @@ def register(sub) -> None:
 def run(args) -> int:
     import hierwork
 
-    print(hierwork.batch_status(args.batch))
+    print(printable(hierwork.batch_status(args.batch)))
     return 0

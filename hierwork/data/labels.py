@@ -3,12 +3,16 @@
 Labels are the column's text with surrounding spaces removed. A factor nested
 in another (``within:``) is labelled by its parent's label and its own, joined
 by ``/`` (``north/7`` and ``south/7`` are two plots), so labels that repeat
-across parents name different groups.
+across parents name different groups. A ``/`` inside the labels of a factor
+that takes part in nesting is refused: region ``a/b`` with site ``c`` and
+region ``a`` with site ``b/c`` would otherwise become one group.
 """
 from __future__ import annotations
 
 import numpy as np
 import pandas as pd
+
+from hierwork.errors import DataError
 
 #: Joins a parent's label and a nested group's own label.
 SEPARATOR = "/"
@@ -27,6 +31,14 @@ def group_labels(frame: pd.DataFrame, factors) -> dict:
     """
     raw = {f.name: raw_labels(frame[f.column]) for f in factors}
     parent = {f.name: f.within for f in factors}
+    nested = {f.name for f in factors if f.within is not None} | {p for p in parent.values() if p is not None}
+    for f in factors:
+        if f.name in nested:
+            clash = [label for label in pd.unique(raw[f.name]) if SEPARATOR in label]
+            if clash:
+                raise DataError(f"group label {clash[0]!r} of factor {f.name!r} (column {f.column!r}) contains "
+                                f"{SEPARATOR!r}, which joins nested labels ({len(clash)} label(s) affected)",
+                                hint=f"replace {SEPARATOR!r} in that column, e.g. by '-'")
     labels: dict = {}
 
     def composite(name):

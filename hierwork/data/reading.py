@@ -9,6 +9,7 @@ each group.
 """
 from __future__ import annotations
 
+import csv
 import hashlib
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -23,6 +24,8 @@ from hierwork.plan.design import check_transform
 from hierwork.plan.families import get_family
 from hierwork.plan.families.base import OutcomeRows
 
+#: Largest count taken as exact: 2^53, beyond which doubles skip whole numbers.
+MAX_COUNT = float(2 ** 53)
 #: Outcome keys holding extra columns, in the order they are checked.
 OUTCOME_COLUMNS = ("trials", "exposure", "known_sd")
 
@@ -69,20 +72,55 @@ class Dataset:
         return OutcomeRows(get(outcome.column), *(get(getattr(outcome, k)) for k in OUTCOME_COLUMNS))
 
 
-def read_table(path: Path) -> pd.DataFrame:
-    """Read a CSV or Parquet file into a DataFrame, as a user error if unreadable."""
+def read_table(path: Path, text_columns=()) -> pd.DataFrame:
+    """Read a CSV or Parquet file into a DataFrame, as a user error if unreadable.
+
+    ``text_columns`` (group labels, categorical levels) are read as the text
+    written in the file: ``07`` and ``7`` stay apart, and only an empty cell is
+    missing (``NA``, ``null``, ``None``, ``N/A``, ``nan`` are labels). In the
+    other columns pandas' usual markers of missing values apply. A header that
+    names a column twice is refused.
+    """
     suffix = path.suffix.lower()
     try:
         if suffix in (".parquet", ".pq"):
-            return pd.read_parquet(path)
-        if suffix in (".csv", ".txt", ".tsv"):
-            return pd.read_csv(path, sep="\t" if suffix == ".tsv" else ",", skipinitialspace=True)
-    except (OSError, ValueError, pd.errors.ParserError, UnicodeDecodeError) as exc:
+            table = pd.read_parquet(path)
+        elif suffix in (".csv", ".txt", ".tsv"):
+            sep = "\t" if suffix == ".tsv" else ","
+            with open(path, newline="", encoding="utf-8") as handle:
+                header = next(csv.reader(handle, delimiter=sep, skipinitialspace=True), [])
+            _refuse_duplicates(header, path)
+            text = [c for c in header if c.strip() in set(text_columns)]
+            table = pd.read_csv(path, sep=sep, skipinitialspace=True, dtype={c: str for c in text},
+                                keep_default_na=False,
+                                na_values={c: [""] if c in text else _MISSING_MARKERS for c in header})
+        else:
+            raise DataError(f"unsupported data file type {suffix!r}", where=str(path),
+                            hint="use .csv, .tsv or .parquet")
+    except (OSError, ValueError, pd.errors.ParserError, UnicodeDecodeError, csv.Error) as exc:
         first = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
         raise DataError(f"cannot read the data file: {first}", where=str(path),
                         hint="it must be a comma-separated text file with a header row, or Parquet") from None
-    raise DataError(f"unsupported data file type {suffix!r}", where=str(path),
-                    hint="use .csv, .tsv or .parquet")
+    _refuse_duplicates(list(table.columns), path)
+    return table
+
+
+#: Cells read as missing outside the text columns (pandas' default markers).
+_MISSING_MARKERS = ["", "#N/A", "#N/A N/A", "#NA", "-1.#IND", "-1.#QNAN", "-NaN", "-nan", "1.#IND", "1.#QNAN",
+                    "<NA>", "N/A", "NA", "NULL", "NaN", "None", "n/a", "nan", "null"]
+
+
+def _refuse_duplicates(header, path) -> None:
+    names = [str(c).strip() for c in header]
+    for i, name in enumerate(names):
+        if name in names[:i]:
+            raise DataError(f"column {name!r} appears twice in the header (columns {names.index(name) + 1} "
+                            f"and {i + 1})", where=str(path), hint="rename one of them")
+
+
+def text_columns_of(spec) -> list:
+    """Columns read as text: group labels and the levels of predictors declared categorical."""
+    return [f.column for f in spec.factors] + [p.column for p in spec.predictors if p.type == "categorical"]
 
 
 def is_csv(path: Path) -> bool:
@@ -107,7 +145,7 @@ def load_dataset(spec) -> Dataset:
     """
     path = spec.data_path
     raw_bytes = path.read_bytes()
-    table = read_table(path)
+    table = read_table(path, text_columns_of(spec))
     if table.empty:
         raise DataError("the data file has no rows", where=str(path))
     table.columns = [str(c).strip() for c in table.columns]
@@ -183,7 +221,19 @@ def _check_outcome(spec, frame, ref: RowRef) -> None:
 
     get = lambda key: None if key not in columns else frame[columns[key]].to_numpy(dtype=float)  # noqa: E731
     rows = OutcomeRows(get("outcome"), *(get(k) for k in OUTCOME_COLUMNS))
-    get_family(out.family).check_data(rows, fail)
+    family = get_family(out.family)
+    family.check_data(rows, fail)
+    if family.discrete:
+        for role in ("outcome", "trials"):
+            if role in columns and (get(role) > MAX_COUNT).any():
+                fail(get(role) > MAX_COUNT, role, f"has counts above 2^53 ({MAX_COUNT:.4g})",
+                     "counts that large are not exact in floating point; model a rate or rescale")
+    per = rows.trials if rows.trials is not None else rows.exposure
+    ratio = rows.y / per if per is not None else rows.y
+    if np.ptp(ratio) == 0:
+        what = "the same value" if per is None else f"the same value per {'trial' if rows.trials is not None else 'exposure'}"
+        raise DataError(f"outcome column {out.column!r} has {what} ({ratio[0]:g}) in every row", where=ref.where,
+                        hint="an outcome that never varies has nothing to model; check the column")
 
 
 def _check_predictors(spec, frame, ref: RowRef) -> dict:

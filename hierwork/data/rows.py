@@ -12,6 +12,9 @@ import pandas as pd
 
 from hierwork.errors import DataError
 
+#: Largest magnitude of a number the model computes with: its square and products of a few such
+#: values stay finite in double precision (largest about 1.8e308). Our own bound.
+MAX_MAGNITUDE = 1e100
 #: Rows named in a message; the rest are counted.
 MAX_ROWS_SHOWN = 5
 
@@ -93,5 +96,9 @@ def numeric(frame: pd.DataFrame, column: str, role: str, ref: RowRef) -> np.ndar
     if not np.isfinite(arr).all():
         mask = ~np.isfinite(arr)
         raise DataError(f"{role} column {column!r} has infinite values in {ref.text(mask)}", where=ref.where)
+    if (np.abs(arr) > MAX_MAGNITUDE).any():
+        raise DataError(f"{role} column {column!r} has values beyond +/-{MAX_MAGNITUDE:g} in "
+                        f"{ref.text(np.abs(arr) > MAX_MAGNITUDE)}", where=ref.where,
+                        hint="the model cannot be evaluated with numbers that large; rescale the column")
     frame[column] = arr
     return arr

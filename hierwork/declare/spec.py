@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import hashlib
 import math
+import re
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -162,10 +163,7 @@ def spec_from_document(document: YamlDocument) -> Spec:
         raise SpecError("a spec must be a YAML mapping of keys such as 'format', 'name', 'data'",
                         where=str(document.path), hint="see the README's spec reference")
     values = _validate_section(document.content, SPEC_KEYS, "", document)
-    data_path = (document.path.parent / values["data"]).resolve()
-    if not data_path.is_file():
-        raise SpecError(f"data file {values['data']!r} not found (looked for {data_path})",
-                        where=document.where("data"), hint="paths are relative to the spec file")
+    data_path = _data_file(document.path.parent / values["data"], values["data"], document.where("data"))
     outcome = Outcome(**values["outcome"])
     _check_outcome(outcome, document)
     predictors, interactions = _predictor_entries(values["predictors"], document)
@@ -178,6 +176,7 @@ def spec_from_document(document: YamlDocument) -> Spec:
     )
     _check_factors(factors, predictors, document)
     _check_spread(factors, outcome, document)
+    _check_names(outcome, predictors, factors, document)
     check_estimates(values, outcome, predictors, factors, document)
     priors = {k: PriorSpec(*next(iter(v.items()))) for k, v in values["priors"].items()}
     return Spec(values=values, document=document, data_path=data_path, outcome=outcome,
@@ -220,6 +219,25 @@ def _predictor_entries(entries: list, doc: YamlDocument) -> tuple:
     return tuple(predictors), tuple(interactions)
 
 
+def _data_file(path: Path, given: str, where: str) -> Path:
+    """The data file's absolute path; a user error unless it is a readable regular file."""
+    try:
+        resolved = path.resolve(strict=False)
+    except (RuntimeError, OSError):  # RuntimeError: Python 3.11's report of a symbolic link loop
+        raise SpecError(f"data file {given!r} is a symbolic link loop", where=where,
+                        hint="point 'data' at the file itself") from None
+    if resolved.is_dir():
+        raise SpecError(f"data {given!r} is a folder, not a file (looked for {resolved})", where=where,
+                        hint="give the CSV or Parquet file inside it")
+    if resolved.exists() and not resolved.is_file():
+        raise SpecError(f"data {given!r} is not a regular file (a pipe or device: {resolved})", where=where,
+                        hint="save the data to a file first")
+    if not resolved.is_file():
+        raise SpecError(f"data file {given!r} not found (looked for {resolved})", where=where,
+                        hint="paths are relative to the spec file")
+    return resolved
+
+
 def _apply_overrides(document: YamlDocument, overrides: dict) -> YamlDocument:
     import copy
 
@@ -237,8 +255,9 @@ def _apply_overrides(document: YamlDocument, overrides: dict) -> YamlDocument:
                 raise SpecError(f"cannot set {dotted!r}: {'.'.join(parts[:i + 1])!r} is not a mapping",
                                 where=f"override {dotted}={value!r}")
         node[parts[-1]] = value
-    lines = dict(document.lines)
-    return YamlDocument(document.path, document.text, content, lines)
+    origins = {".".join(parts): f"override {dotted}={value!r}" for dotted, value in overrides.items()
+               for parts in [str(dotted).split(".")]}
+    return YamlDocument(document.path, document.text, content, dict(document.lines), origins)
 
 
 def _validate_section(content, keys: dict, path: str, doc: YamlDocument) -> dict:
@@ -383,6 +402,35 @@ def _check_outcome(outcome: Outcome, doc: YamlDocument) -> None:
                             where=doc.where("outcome.family"),
                             hint=f"add outcome.{key}" + (", or use family bernoulli for 0/1"
                                                          if family.name == "binomial" else ""))
+
+
+#: Characters a factor's name may not hold: the joiner of nested labels, and line breaks or
+#: other control characters (names become parts of file, column and variable names).
+_NAME_FORBIDDEN = re.compile(r"[/\x00-\x1f\x7f]")
+
+
+def _check_names(outcome, predictors, factors, doc: YamlDocument) -> None:
+    """Names that later stages use as labels and parameter names must be usable; the outcome is not an input."""
+    for f in factors:
+        if _NAME_FORBIDDEN.search(f.name) or f.name != f.name.strip() or not f.name:
+            raise SpecError(f"factor name {f.name!r} cannot be used: no '/', line breaks, control characters "
+                            "or surrounding spaces", where=doc.where(f"groups.{f.name}"),
+                            hint="rename the factor (e.g. 'site'), and give its column with 'column:'")
+    for i, p in enumerate(predictors):
+        if p.column == "intercept" or "=" in p.column:
+            raise SpecError(f"predictor {p.column!r} clashes with the names of terms ('intercept', 'column=level')",
+                            where=doc.where(f"predictors[{i}]"), hint="rename the column in the data file")
+    inputs = {p.column: f"predictors[{i}]" for i, p in enumerate(predictors)}
+    for f in factors:
+        inputs.setdefault(f.column, f"groups.{f.name}.column")
+        for term in f.varying:
+            inputs.setdefault(term, f"groups.{f.name}.varying")
+        for column in f.predictors:
+            inputs.setdefault(column, f"groups.{f.name}.predictors")
+    if outcome.column in inputs:
+        where = inputs[outcome.column]
+        raise SpecError(f"the outcome {outcome.column!r} is also used as an input ({where})",
+                        where=doc.where(where), hint="a column cannot explain itself; remove it there")
 
 
 def _check_factors(factors, predictors, doc: YamlDocument) -> None:

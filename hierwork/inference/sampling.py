@@ -13,6 +13,7 @@ import sys
 import time
 
 from hierwork import runtime  # noqa: F401  (before PyMC)
+from hierwork.interrupts import chain_context
 
 import arviz as az
 import numpy as np
@@ -158,7 +159,8 @@ def run_sampler(model: pm.Model, settings: dict, engine: str, progress: bool | N
                           nuts={"target_accept": settings["target_accept"],
                                 "max_treedepth": settings["max_treedepth"]},
                           callback=log.pymc_callback if log else None,
-                          compute_convergence_checks=False, idata_kwargs={"log_likelihood": False})
+                          compute_convergence_checks=False, idata_kwargs={"log_likelihood": False},
+                          mp_ctx=chain_context())  # chains end with this process, however it ends
     idata.sample_stats.attrs["sampling_seconds"] = time.perf_counter() - start
     idata.sample_stats.attrs["engine"] = engine
     return idata

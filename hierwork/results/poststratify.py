@@ -26,7 +26,7 @@ from hierwork.data.labels import group_labels
 from hierwork.data.rows import RowRef, blank
 from hierwork.errors import DataError, HierworkError
 from hierwork.results.draws import chunks, linear_predictor
-from hierwork.results.predict import new_rows, read_rows
+from hierwork.results.predict import new_rows, read_rows, text_columns
 from hierwork.runfolder import Run
 
 #: Columns of the output, one row per area and one for the whole population.
@@ -78,7 +78,7 @@ def poststratify(run, population, by=(), count: str = "count", seed: int | None 
         raise HierworkError(f"interval must be at least 0.5 and below 1, got {interval:g}", where="--interval")
     interval = interval or run.interval
     frame, ref = read_rows(population, "population table", "the population table has no rows",
-                           hint="give one row per population cell with its count")
+                           hint="give one row per population cell with its count", text_columns=text_columns(run))
     weights = _counts(frame, count, ref)
     factors = {f["name"]: f for f in run.plan["factors"]}
     cells = new_rows(run, frame, ref, seed, "poststratify", outcome_columns=False)

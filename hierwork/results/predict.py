@@ -78,7 +78,7 @@ def predict(run, new_data, seed: int | None = None, interval: float | None = Non
     run = run if isinstance(run, Run) else Run.load(run)
     if interval is not None and not 0.5 <= interval < 1:
         raise HierworkError(f"interval must be at least 0.5 and below 1, got {interval:g}", where="interval")
-    frame, ref = read_rows(new_data, "new data", "no rows to predict")
+    frame, ref = read_rows(new_data, "new data", "no rows to predict", text_columns=text_columns(run))
     interval = interval or run.interval
     cells = new_rows(run, frame, ref, seed, "predict")
     result = frame.copy()
@@ -91,13 +91,35 @@ def predict(run, new_data, seed: int | None = None, interval: float | None = Non
     return result
 
 
-def read_rows(data, name: str, empty: str, hint: str | None = None) -> tuple:
+def plan_parts(run: Run) -> tuple:
+    """The run's family, factors and population design from ``plan.json``; one line if it is damaged."""
+    plan = run.plan or {}
+    try:  # a damaged plan.json is the run folder's fault, not a bug
+        family = get_family(plan["family"])
+        factors = [SimpleNamespace(**f) for f in plan["factors"]]
+        for f in factors:
+            f.name, f.column, f.within, f.predictors  # noqa: B018  (every field predict reads)
+        design = Design.from_dict(plan["design"])
+    except (KeyError, TypeError, ValueError, AttributeError) as exc:
+        raise RunFolderError(f"plan.json is damaged (missing or malformed: {exc})", where=str(run.path / "plan.json"),
+                             hint="rerun the fit to rewrite it") from None
+    return family, factors, design
+
+
+def text_columns(run: Run) -> list:
+    """Columns read as the text in the file, exactly as when fitting: group columns and categorical levels."""
+    _, factors, design = plan_parts(run)
+    return [f.column for f in factors] + list(design.levels)
+
+
+def read_rows(data, name: str, empty: str, hint: str | None = None, text_columns=()) -> tuple:
     """A table given as a DataFrame or a file (CSV, Parquet): its rows (columns stripped) and their references.
 
-    ``name`` stands for a DataFrame in messages; ``empty`` is the message when there are no rows.
+    ``name`` stands for a DataFrame in messages; ``empty`` is the message when there are no rows;
+    ``text_columns`` are read as written (labels such as ``07`` or ``NA`` stay labels).
     """
     if isinstance(data, (str, Path)):
-        frame = read_table(Path(data))
+        frame = read_table(Path(data), list(text_columns))
         ref = RowRef.of(str(data), len(frame), is_csv(Path(data)))
     else:
         frame = data.copy()
@@ -132,9 +154,7 @@ def new_rows(run: Run, frame: pd.DataFrame, ref: RowRef, seed: int | None, strea
     needed (draws of the outcome need them; its expected value does not).
     """
     spec, plan = run.spec, run.plan
-    family = get_family(plan["family"])
-    factors = [SimpleNamespace(**f) for f in plan["factors"]]
-    design = Design.from_dict(plan["design"])
+    family, factors, design = plan_parts(run)
     seed = run.seed if seed is None else seed
     outcome = spec["outcome"] if outcome_columns else {}
     need = _required_columns(design, factors, outcome)
