@@ -38,6 +38,12 @@ class View:
         return cls(run, run.group_estimates, scale, run.estimands or {})
 
     @property
+    def outcome_column(self) -> str:
+        """The outcome's column name in the data (for axis labels)."""
+        outcome = self.run.spec.get("outcome")
+        return str(outcome.get("column", "outcome")) if isinstance(outcome, dict) else "outcome"
+
+    @property
     def ready(self) -> bool:
         """Whether the group table has the outcome-scale columns (runs of older versions do not)."""
         return self.table is not None and "outcome_mean" in self.table.columns
