@@ -262,8 +262,8 @@ def test_check_line_states_the_miss():
 
 
 def test_fmt_keeps_four_significant_digits():
-    assert [fmt(v) for v in (4.12345, 0.012345, 1234.0, 123456.7, 0.00012, float("nan"), None)] \
-        == ["4.123", "0.01235", "1234", "123,457", "1.200e-04", "-", "-"]
+    assert [fmt(v) for v in (4.12345, 0.012345, 1234.0, 123456.7, 0.00012, -8.858e-4, 3e-6, float("nan"), None)] \
+        == ["4.123", "0.01235", "1234", "123,457", "0.00012", "-0.0008858", "3.000e-06", "-", "-"]
 
 
 def test_thousands_of_groups_draw_a_capped_scatter():

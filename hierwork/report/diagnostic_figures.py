@@ -7,6 +7,8 @@ quantile bands of replicated counts) is part of drawing it.
 """
 from __future__ import annotations
 
+import textwrap
+
 import numpy as np
 from matplotlib.ticker import FuncFormatter
 
@@ -83,7 +85,7 @@ def trace_rank_plot(idata, stamp: str | None = None, chosen: list | None = None,
                            baseline=None)
         rank_ax.axhline(n_draws / (len(bins) - 1), color=GREY, linestyle=":", linewidth=1)
         rank_ax.set_ylim(bottom=0)
-        trace_ax.set_ylabel(clip_text(label, 26), rotation=0, ha="right", va="center")
+        trace_ax.set_ylabel("\n".join(textwrap.wrap(clip_text(label, 66), 22)), rotation=0, ha="right", va="center")
         rank_ax.set_yticks([])
     axes[0, 0].set_title("trace (one colour per chain)", loc="left")
     axes[0, 1].set_title("rank histogram per chain", loc="left")
@@ -206,8 +208,10 @@ def _smallest_group(estimates, factor, effect):
 # --- posterior predictive --------------------------------------------------------
 
 @styled
-def ppc_plot(idata, stamp: str | None = None, max_draws: int = 40, outcome: str = "outcome") -> Plot | None:
-    """Observed outcome against outcomes replicated from the posterior; the axis is labelled ``outcome``.
+def ppc_plot(idata, stamp: str | None = None, max_draws: int = 40, outcome: str = "outcome",
+             trials: str = "trials") -> Plot | None:
+    """Observed outcome against outcomes replicated from the posterior; the axis is labelled ``outcome``
+    (binomial: as a share of the ``trials`` column).
 
     Binomial outcomes (``constant_data["trials"]``) are compared as
     proportions of their trials, so that groups of very different size are on
@@ -230,17 +234,17 @@ def ppc_plot(idata, stamp: str | None = None, max_draws: int = 40, outcome: str 
     pick = np.linspace(0, replicated.shape[0] - 1, min(max_draws, replicated.shape[0]))
     replicated = replicated[pick.round().astype(int)]
     constant = getattr(idata, "constant_data", None)
-    trials = None
+    per_row = None
     if constant is not None and "trials" in constant and constant["trials"].size == observed.size:
-        trials = constant["trials"].values.astype(float)
-        observed, replicated = observed / trials, replicated / trials
-        label = f"{outcome} as a share of its trials"
+        per_row = constant["trials"].values.astype(float)
+        observed, replicated = observed / per_row, replicated / per_row
+        label = f"{outcome} as a share of {trials}"
     else:
         label = outcome
     fig = new_figure(5.6, 2.8)
     ax = fig.add_subplot()
     values = np.unique(observed)
-    if trials is None and np.all(observed == np.round(observed)) and len(values) <= 30:
+    if per_row is None and np.all(observed == np.round(observed)) and len(values) <= 30:
         support = np.arange(min(values.min(), replicated.min()), max(values.max(), 0) + 1)
         support = support[support <= values.max() + 3]
         freq = np.array([[np.mean(r == v) for v in support] for r in replicated])
@@ -265,7 +269,7 @@ def ppc_plot(idata, stamp: str | None = None, max_draws: int = 40, outcome: str 
         kind = f"distribution of {label}"
         how = (f"the black outline is the observed distribution of {label}, the light lines "
                f"{len(replicated)} data sets replicated from the posterior")
-        if trials is not None:
+        if per_row is not None:
             ax.xaxis.set_major_formatter(FuncFormatter(lambda v, _: f"{100 * v:.3g}%"))
     ax.set_xlabel(clip_text(label, 60))
     ax.legend(frameon=False, loc="upper right")

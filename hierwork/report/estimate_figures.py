@@ -242,15 +242,28 @@ def pooling_plot(rows, factor: str, term: str, scale: Scale, interval: float, st
                 f"{scale.text(r['no_pooling_outcome'], change)} on its own data to "
                 f"{scale.text(r['outcome_mean'], change)} with partial pooling")
 
+    values = ", ".join(scale.text(v, change) for v in sorted(complete)[:4]) + (", ..." if len(complete) > 4 else "")
     flat = (f"the complete-pooling value is {scale.text(complete[0], change)}" if len(complete) == 1
-            else "complete-pooling values differ by group")
+            else f"the complete-pooling values are {values} (they differ with the group-level predictors)")
     alt = (f"Pooling plot for {factor}, {what}, {len(rows)} groups: {moved(smallest)}; "
            f"{moved(largest)}; {flat}.")
-    caption = (f"{factor}, {what}: hollow circles are each group's estimate from its own "
-               f"data alone (no pooling; circle area grows with the group's {_volume_name(size_column, scale)}), filled "
-               f"points and bars the partially pooled posterior mean and {interval:.0%} "
-               f"interval, the dashed line complete pooling (one value for all groups). "
-               f"Small groups are pulled further towards the population value. {note}")
+    volume_name = _volume_name(size_column, scale)
+    if len(complete) == 1:
+        complete_text = f"the dashed line complete pooling (one value for all groups, {scale.text(complete[0], change)})"
+    else:
+        complete_text = (f"the black ticks complete pooling, which gives {len(complete)} values here ({values}): "
+                         "one per combination of the group-level predictors")
+    if len(rows) <= MAX_FOREST_GROUPS:
+        caption = (f"{factor}, {what}: hollow circles are each group's estimate from its own data alone (no pooling; "
+                   f"circle area grows with the group's {volume_name}), filled points and bars the partially pooled "
+                   f"posterior mean and {interval:.0%} interval, {complete_text}. Small groups are pulled further "
+                   f"towards the population value. {note}")
+    else:
+        where = (f"the dashed line is complete pooling ({scale.text(complete[0], change)})" if len(complete) == 1
+                 else f"complete pooling gives {len(complete)} values ({values}), not drawn")
+        caption = (f"{factor}, {what}, {len(rows)} groups: each point is one group, its own-data estimate (no pooling) "
+                   f"across and its partially pooled posterior mean up; point area grows with the group's "
+                   f"{volume_name}; {where}. {note}")
     return finish(fig, alt, caption.strip(), stamp)
 
 
@@ -308,10 +321,10 @@ def _scatter(rows, axis: str, complete, scale: Scale):
     ax.scatter(own[finite], mean[finite], s=_areas(sizes)[finite] / 3, color=PALETTE["blue"], alpha=0.6,
                edgecolors="none", rasterized=True, label="group (area grows with its information)")
     ax.set_xlabel(clip_text("own data only: " + axis, 90))
-    ax.set_ylabel("partial pooling mean")
+    ax.set_ylabel(clip_text("partial pooling: " + axis, 90))
     scale.format_axis(ax.xaxis)
     scale.format_axis(ax.yaxis)
     ax.legend(loc="upper left", frameon=False)
-    text = (f"With {len(rows)} groups, each point is one group: the further from the grey "
-            f"y = x line towards the dashed line, the more it was pooled. " + " ".join(note))
+    text = ("The further a point lies from the grey y = x line (no pooling), the more the group was pooled. "
+            + " ".join(note))
     return fig, text

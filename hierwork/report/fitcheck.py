@@ -44,7 +44,7 @@ def loo_sentences(run: Run) -> list[str]:
         listed = "; ".join(_row_text(r) for r in named[:MAX_NAMED_ROWS])
         more = f" and {count - MAX_NAMED_ROWS} more" if count > MAX_NAMED_ROWS else ""
         lines.append(f"{count} of {n} {what} have a Pareto k above {number(bad)} (largest "
-                     f"{number(record['pareto_k_max'], 3)}), so their leave-one-out estimates are unreliable"
+                     f"{number(record['pareto_k_max'], 3)}), so their leave-one-out estimates are unreliable (rows counted from 1 in the data as modelled)"
                      + (f": {listed}{more}." if listed else ".")
                      + " Such rows are influential: the fit changes a lot without them. Look at them in the data "
                        "(entry errors, unusual groups), consider a family with heavier tails or more "

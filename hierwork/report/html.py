@@ -129,7 +129,8 @@ def _diagnostics_section(c: "Context") -> Raw:
 def _fit_section(c: "Context") -> Raw:
     run, idata, stamp, sink = c.run, c.idata, c.stamp, c.sink
     outcome = c.view.outcome_column
-    ppc = None if idata is None else figures.ppc_plot(idata, stamp, outcome=outcome)
+    ppc = None if idata is None else figures.ppc_plot(idata, stamp, outcome=outcome,
+                                                            trials=c.view.outcome_key("trials", "trials"))
     content = [el("h3", "Posterior predictive check"),
                figure_element(ppc, "No posterior predictive draws were stored in posterior.nc.", "ppc", sink),
                el("h3", "Leave-one-out cross-validation (PSIS-LOO)"),
@@ -138,13 +139,10 @@ def _fit_section(c: "Context") -> Raw:
     if len(high):
         content.append(data_table(high, {c: c.replace("_", " ") for c in high.columns},
                                   "Rows with Pareto k above 0.7", sortable=True))
-    content.append(el("h4", "Across the pooling spectrum"))
-    if run.pooling_comparison is None:
-        content.append(el("p", "Not computed for this run: partial, complete and no pooling are compared by "
-                          "PSIS-LOO only with estimates.compare_pooling: true (two more small fits).", class_="note"))
-    else:
+    if run.pooling_comparison is not None:
         labels = {c: c.replace("_", " ") for c in run.pooling_comparison.columns}
-        content += [el("p", "Expected log predictive density by PSIS-LOO (Vehtari, Gelman and "
+        content += [el("h4", "Across the pooling spectrum"),
+                    el("p", "Expected log predictive density by PSIS-LOO (Vehtari, Gelman and "
                        "Gabry 2017); higher is better, differences within about two standard "
                        "errors are not decisive.", class_="note"),
                     data_table(run.pooling_comparison, labels, "LOO comparison", sortable=False)]

@@ -13,6 +13,7 @@ import re
 import pandas as pd
 
 from hierwork.formatting import number as fmt
+from hierwork.report import fitcheck
 from hierwork.report.page import CAUTION
 from hierwork.report.standout import factor_sentences, standing_out
 from hierwork.report.verdict import verdict
@@ -124,6 +125,17 @@ def render_markdown(run: Run) -> str:
         lines += ["## Pooling factor (Gelman and Pardoe 2006)", "",
                   *_table(run.pooling, {"factor": "factor", "term": "term",
                                         "n_groups": "groups", "pooling_factor": "lambda"}), ""]
+    lines += ["## Fit to the data", "", "### Leave-one-out (PSIS-LOO)", "",
+              *[md_escape(line) for line in fitcheck.loo_sentences(run)], ""]
+    high = fitcheck.high_k_table(run)
+    if len(high):
+        lines += [*_table(high, {c: c.replace("_", " ") for c in high.columns}), ""]
+    lines += ["### Calibration of the predictive intervals", "",
+              *[md_escape(line) for line in fitcheck.calibration_sentences(run)], ""]
+    calibration = fitcheck.calibration_table(run)
+    if calibration is not None:
+        lines += [*_table(calibration, {"interval": "nominal interval", "scope": "rows", "coverage": "coverage",
+                                        "detail": "detail"}), ""]
     reproduce = (run.provenance or {}).get("reproduce")
     if reproduce:
         lines += ["## Reproduce", "", "```", str(reproduce).replace("```", "'''"), "```", ""]
