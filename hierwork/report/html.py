@@ -12,6 +12,7 @@ calibration (:mod:`hierwork.report.fitcheck`); provenance; caution. Every figure
 from __future__ import annotations
 
 import math
+import re
 from dataclasses import dataclass
 from typing import Callable
 
@@ -164,6 +165,13 @@ def _overrides(overrides) -> str | None:
     return "; ".join(str(o) for o in overrides)
 
 
+def _command(command) -> str | None:
+    """The recorded command line, with ``.../hierwork/__main__.py`` written as ``python -m hierwork``."""
+    if not command:
+        return None
+    return re.sub(r"^\S*hierwork[/\\]__main__\.py", "python -m hierwork", str(command))
+
+
 def _provenance_section(c: "Context") -> Raw:
     run = c.run
     prov = run.provenance or {}
@@ -174,7 +182,7 @@ def _provenance_section(c: "Context") -> Raw:
               ("Data sha256", prov.get("data_sha256")), ("Seed", prov.get("seed")),
               ("Started", prov.get("started")), ("Finished", prov.get("finished")),
               ("Engine", prov.get("engine")), ("Path", prov.get("path")),
-              ("Overrides", _overrides(prov.get("overrides"))), ("Command", prov.get("command"))]
+              ("Overrides", _overrides(prov.get("overrides"))), ("Command", _command(prov.get("command")))]
     items = [[el("dt", k), el("dd", el("code", val) if k in ("Command", "Overrides") else val)]
              for k, val in fields if val not in (None, "")]
     reproduce = prov.get("reproduce")
