@@ -100,6 +100,11 @@ def _groups(view: View) -> list[str]:
     return lines
 
 
+def _paragraphs(sentences: list[str]) -> list[str]:
+    """Each sentence its own Markdown paragraph."""
+    return [line for sentence in sentences for line in (md_escape(sentence), "")]
+
+
 def render_markdown(run: Run) -> str:
     """The ``summary.md`` text of ``run``."""
     v = verdict(run.diagnostics)
@@ -126,12 +131,11 @@ def render_markdown(run: Run) -> str:
                   *_table(run.pooling, {"factor": "factor", "term": "term",
                                         "n_groups": "groups", "pooling_factor": "lambda"}), ""]
     lines += ["## Fit to the data", "", "### Leave-one-out (PSIS-LOO)", "",
-              *[md_escape(line) for line in fitcheck.loo_sentences(run)], ""]
+              *_paragraphs(fitcheck.loo_sentences(run))]
     high = fitcheck.high_k_table(run)
     if len(high):
         lines += [*_table(high, {c: c.replace("_", " ") for c in high.columns}), ""]
-    lines += ["### Calibration of the predictive intervals", "",
-              *[md_escape(line) for line in fitcheck.calibration_sentences(run)], ""]
+    lines += ["### Calibration of the predictive intervals", "", *_paragraphs(fitcheck.calibration_sentences(run))]
     calibration = fitcheck.calibration_table(run)
     if calibration is not None:
         lines += [*_table(calibration, {"interval": "nominal interval", "scope": "rows", "coverage": "coverage",
