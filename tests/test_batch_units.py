@@ -351,3 +351,11 @@ def test_summary_links_the_best_attempt_not_the_last(tmp_path):
     summary.write(tmp_path, q)
     assert 'href="jobs/job/attempt-1/report.html"' in (tmp_path / "index.html").read_text()
     assert "report of attempt 1" in (tmp_path / "index.md").read_text()
+
+
+def test_remedies_read_the_factor_from_reader_facing_names():
+    from hierwork.batch.remedies import failing_factors
+
+    failing = [{"worst_parameter": "plot.sd"}, {"worst_parameter": "farm=F01 intercept (standardised offset)"},
+               {"worst_parameter": "farm_zone__sd[intercept]"}, {"worst_parameter": "intercept"}]
+    assert failing_factors(failing, ["farm", "farm_zone", "plot"]) == ["plot", "farm", "farm_zone"]

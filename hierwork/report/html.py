@@ -11,6 +11,7 @@ calibration (:mod:`hierwork.report.fitcheck`); provenance; caution. Every figure
 """
 from __future__ import annotations
 
+import json
 import math
 import re
 from dataclasses import dataclass
@@ -161,7 +162,7 @@ def _overrides(overrides) -> str | None:
     if not overrides:
         return None
     if isinstance(overrides, dict):
-        return "; ".join(f"{k} = {v}" for k, v in overrides.items())
+        return "; ".join(f"{k} = {json.dumps(v) if isinstance(v, (dict, list)) else v}" for k, v in overrides.items())
     return "; ".join(str(o) for o in overrides)
 
 
