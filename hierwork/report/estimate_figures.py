@@ -55,14 +55,19 @@ def _thin(rows, note: list):
     return rows.iloc[pick]
 
 
-def _axis_range(rows, complete) -> tuple[float, float]:
+def _axis_range(rows, complete, scale: Scale | None = None, change: bool = False) -> tuple[float, float]:
     """The values a figure must show: every partially pooled interval and complete pooling, plus half
-    their span on either side (own-data estimates further out are marked at the edge)."""
+    their span on either side (own-data estimates further out are marked at the edge); a probability
+    axis stays within 0 to 1 and a rate's above 0."""
     values = np.r_[rows["outcome_lower"].to_numpy(dtype=float), rows["outcome_upper"].to_numpy(dtype=float),
                    np.asarray(complete, dtype=float)]
     low, high = np.nanmin(values), np.nanmax(values)
     margin = 0.5 * (high - low) if high > low else 1.0
-    return low - margin, high + margin
+    low, high = low - margin, high + margin
+    if scale is not None and scale.kind in ("probability", "rate") and not change:
+        low = max(low, 0.0)
+        high = min(high, 1.0) if scale.kind == "probability" else high
+    return low, high
 
 
 def _off_axis(own: np.ndarray, limits: tuple[float, float]) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
@@ -226,10 +231,11 @@ def pooling_plot(rows, factor: str, term: str, scale: Scale, interval: float, st
     axis = scale.axis_label(term)
     complete = rows["complete_pooling_outcome"].dropna().unique()
     if len(rows) <= MAX_FOREST_GROUPS:
-        fig, note = _forest(rows, axis, interval, complete, scale), ""
+        fig, note = _forest(rows, axis, interval, complete, scale, term != "intercept"), ""
     else:
-        fig, note = _scatter(rows, axis, complete, scale)
-    _, below, above = _off_axis(rows["no_pooling_outcome"].to_numpy(dtype=float), _axis_range(rows, complete))
+        fig, note = _scatter(rows, axis, complete, scale, term != "intercept")
+    _, below, above = _off_axis(rows["no_pooling_outcome"].to_numpy(dtype=float),
+                                _axis_range(rows, complete, scale, term != "intercept"))
     if (below | above).any():
         note += (f" {int((below | above).sum())} own-data estimates lie beyond the axis (triangles at its edge): "
                  f"too few rows to pin the group down at these values of the predictors.")
@@ -267,7 +273,7 @@ def pooling_plot(rows, factor: str, term: str, scale: Scale, interval: float, st
     return finish(fig, alt, caption.strip(), stamp)
 
 
-def _forest(rows, axis: str, interval: float, complete, scale: Scale):
+def _forest(rows, axis: str, interval: float, complete, scale: Scale, change: bool):
     size_column, sizes = volume(rows)
     fig = new_figure(6.6, 1.0 + 0.24 * len(rows))
     ax = fig.add_subplot()
@@ -279,7 +285,7 @@ def _forest(rows, axis: str, interval: float, complete, scale: Scale):
                    label="complete pooling")
     ax.hlines(y, rows["outcome_lower"], rows["outcome_upper"], color=PALETTE["blue"], linewidth=2,
               label=f"partial pooling, {interval:.0%} interval")
-    limits = _axis_range(rows, complete)
+    limits = _axis_range(rows, complete, scale, change)
     own, below, above = _off_axis(rows["no_pooling_outcome"].to_numpy(dtype=float), limits)
     mean = rows["outcome_mean"].to_numpy(dtype=float)
     for yi, start, end in zip(y, own, mean):
@@ -305,13 +311,13 @@ def _forest(rows, axis: str, interval: float, complete, scale: Scale):
     return fig
 
 
-def _scatter(rows, axis: str, complete, scale: Scale):
+def _scatter(rows, axis: str, complete, scale: Scale, change: bool):
     note: list = []
     rows = _thin(rows, note)
     _, sizes = volume(rows)
     fig = new_figure(6.0, 4.4)
     ax = fig.add_subplot()
-    own, _, _ = _off_axis(rows["no_pooling_outcome"].to_numpy(dtype=float), _axis_range(rows, complete))
+    own, _, _ = _off_axis(rows["no_pooling_outcome"].to_numpy(dtype=float), _axis_range(rows, complete, scale, change))
     mean = rows["outcome_mean"].to_numpy(dtype=float)
     finite = np.isfinite(own)
     low, high = np.nanmin(np.r_[own, mean]), np.nanmax(np.r_[own, mean])
