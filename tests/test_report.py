@@ -332,15 +332,16 @@ def test_count_outcome_ppc_compares_shares_per_value():
     idata = az.from_dict(posterior={"b": rng.normal(size=(2, 50, 1))},
                          posterior_predictive={"defects": rng.poisson(2.0, (2, 50, 80))},
                          observed_data={"defects": observed})
-    plot = diagnostic_figures.ppc_plot(idata)
+    plot = diagnostic_figures.ppc_plot(idata, outcome="defects")
     assert plot.alt == ("Posterior predictive check of defects: the share of rows at each value "
-                        "of the 80 observed values drawn over 40 data sets replicated from the "
+                        "of defects in the 80 observed rows drawn over 40 data sets replicated from the "
                         "posterior.")
+    assert ">defects<" in plot.svg  # the axis is labelled with the outcome column
     assert diagnostic_figures.ppc_plot(az.from_dict(posterior={"b": rng.normal(size=(2, 50))})) is None
 
 
 def test_hyperparameters_follow_the_posterior_naming_contract():
-    # docs/contracts.md, "Names inside posterior.nc".
+    # docs/contracts.md, "Names inside posterior.nc"; shown by the names of README, "Parameter names".
     import arviz as az
 
     rng = np.random.default_rng(6)
@@ -355,8 +356,8 @@ def test_hyperparameters_follow_the_posterior_naming_contract():
               "farm__corr": ["farm__term", "farm__term_bis"],
               "farm__effect": ["farm", "farm__term"]})
     labels = [label for label, _, _ in diagnostic_figures.hyperparameters(idata.posterior)]
-    assert labels == ["b[intercept]", "b[nitrogen_kg]", "residual_sd", "farm__sd[intercept]",
-                      "farm__sd[nitrogen_kg]", "farm__gamma[soil_carbon]"]
+    assert labels == ["intercept", "nitrogen_kg", "residual_sd", "farm.sd",
+                      "farm.nitrogen_kg.sd", "farm.soil_carbon"]
 
 
 def test_long_group_tables_are_cut_with_a_pointer_to_the_csv(run_root, monkeypatch):
