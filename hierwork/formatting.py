@@ -1,8 +1,9 @@
 """One way to show a number, everywhere hierwork prints one.
 
 Significant figures (4 by default), thousands separators for large whole
-numbers, and no exponent between 1e-3 and 1e6 (the range of the estimates,
-diagnostics and probabilities users read). :func:`number_against` adds digits
+numbers, and no exponent between 1e-5 and 1e6 (the range of the estimates,
+diagnostics, correlations and probabilities users read: a correlation of
+-0.0008858 reads as such, not as ``-8.858e-04``). :func:`number_against` adds digits
 until a value that differs from its threshold also *reads* differently, so a
 failing R-hat of 1.0104 never shows as ``1.01 > 1.01``.
 """
@@ -13,7 +14,7 @@ import math
 __all__ = ["number", "number_against", "share", "probability"]
 
 #: Below this magnitude (and from ``_LARGE`` up) a number is written with an exponent.
-_SMALL, _LARGE = 1e-3, 1e6
+_SMALL, _LARGE = 1e-5, 1e6
 
 
 def number(value, digits: int = 4) -> str:

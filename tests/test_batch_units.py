@@ -382,3 +382,32 @@ def test_eta_spreads_the_mean_job_time_over_the_workers():
     assert eta_seconds(jobs, slots=2, now=100.0) == (15 + 15 + 10) / 2
     assert eta_seconds(jobs[2:], slots=2, now=100.0) is None
     assert [duration(s) for s in (42, 425, 11520)] == ["42s", "7m05s", "3h12m"]
+
+
+def test_summary_links_the_best_attempt_not_the_last(tmp_path):
+    # Issue 13: a job's last attempt may be worse than an earlier one; the index links the attempt
+    # that passed, else the one with the fewest failing checks.
+    one_failure = {"passed": False, "checks": [check("r_hat", 1.02, 1.01, "<=", False),
+                                               check("ess_bulk", 812.0, 400, ">=", True)]}
+    two_failures = {"passed": False, "checks": [check("r_hat", 1.05, 1.01, "<=", False),
+                                                check("ess_bulk", 120.0, 400, ">=", False)]}
+    q = Queue(tmp_path, create=True)
+    q.upsert_job("job", 0, "/specs/job.yaml", {}, "s", "d")
+    for number, diagnostics in ((1, one_failure), (2, two_failures)):
+        q.start_attempt("job", number, {}, None if number == 1 else "more draws", 0, f"jobs/job/attempt-{number}")
+        q.finish_attempt("job", number, "failed", 3, None, diagnostics)
+        (tmp_path / "jobs" / "job" / f"attempt-{number}").mkdir(parents=True)
+        (tmp_path / "jobs" / "job" / f"attempt-{number}" / "report.html").write_text("<html></html>")
+    q.finish_job("job", "failed", None, 2, 3)
+    assert summary.best_attempt(q.attempts("job"))["number"] == 1
+    summary.write(tmp_path, q)
+    assert 'href="jobs/job/attempt-1/report.html"' in (tmp_path / "index.html").read_text()
+    assert "report of attempt 1" in (tmp_path / "index.md").read_text()
+
+
+def test_remedies_read_the_factor_from_reader_facing_names():
+    from hierwork.batch.remedies import failing_factors
+
+    failing = [{"worst_parameter": "plot.sd"}, {"worst_parameter": "farm=F01 intercept (standardised offset)"},
+               {"worst_parameter": "farm_zone__sd[intercept]"}, {"worst_parameter": "intercept"}]
+    assert failing_factors(failing, ["farm", "farm_zone", "plot"]) == ["plot", "farm", "farm_zone"]

@@ -24,8 +24,9 @@ def test_spec_differences_are_dotted_keys():
     a = {"sampling": {"draws": 1000, "seed": 1}, "groups": {"farm": {"column": "farm"}}}
     b = {"sampling": {"draws": 500, "seed": 1},
          "groups": {"farm": {"column": "farm", "parameterisation": "non_centred"}}}
+    # A key one spec leaves out shows the key table's default (README key table).
     assert spec_differences(a, b) == [("sampling.draws", "1000", "500"),
-                                      ("groups.farm.parameterisation", "(absent)", "non_centred")]
+                                      ("groups.farm.parameterisation", "auto (default)", "non_centred")]
     assert spec_differences(a, a) == []
 
 
@@ -69,8 +70,34 @@ def test_compare_html_escapes_labels_and_is_self_contained(run_root):
     assert page.errors == []
     assert "<script>alert(1)" not in html
     assert any(text == HOSTILE for _, _, text in page.find("td"))
-    assert len(page.find("script")) == 1 and not page.find("img")
+    assert len(page.find("script")) == 1
+    assert page.find("img") and all(a["src"].startswith("data:image/svg+xml;base64,") for _, a, _ in page.find("img"))
     assert "http://" not in html and "https://" not in html
+
+
+def test_a_prior_change_lists_every_parameter_with_its_change(run_root):
+    # Two runs differing only in the prior of farm.sd (half-normal 0.05 against the default): every
+    # parameter of summary.csv is listed with both runs' values, largest change first, and the spec
+    # difference shows the prior each run actually used (plan.json), not "(absent)".
+    a, b = build_run(run_root), build_run(run_root, farm_sd_prior=0.05)
+    comparison = compare_runs(a, b, moved=0.25)
+    summary = pd.read_csv(a / "summary.csv")
+    assert set(comparison.parameters["parameter"]) == set(summary["parameter"])
+    sizes = comparison.parameters["change_in_sd"].abs()
+    assert sizes.is_monotonic_decreasing and comparison.parameters.iloc[0]["parameter"] == "farm.sd"
+    assert (comparison.moved_parameters["change_in_sd"].abs() > 0.25).all()
+    plan_a = json.loads((a / "plan.json").read_text())["priors"]["farm.sd"]
+    assert comparison.spec_changes == [("priors.farm.sd", _prior(plan_a), "half_normal(sigma=0.05)")]
+    text = comparison.text()
+    assert "(absent)" not in text and f"({len(summary)}; " in text
+    assert "farm.sd" in text.split("Every population and variance parameter")[1].splitlines()[2]
+
+
+def _prior(prior):
+    from hierwork.formatting import number
+
+    return (f"{prior['dist']}(" + ", ".join(f"{k}={number(v)}" for k, v in prior["params"].items())
+            + ") (default)")
 
 
 def test_groups_in_one_run_only_are_listed(run_root, tmp_path):

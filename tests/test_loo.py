@@ -70,6 +70,14 @@ def test_pareto_k_counts_stored_per_model(cbpp):
         assert record["n"] == plan.n
         assert 0 <= record["pareto_k_above_0.7"] <= record["pareto_k_above_arviz_threshold"] <= plan.n
         assert (record["pareto_k_above_0.7"] > 0) == (record["pareto_k_max"] > loo.PARETO_K_BAD)
+    # The run's own rows with k > 0.7 are named, highest first, with the outcome and groups of the row.
+    high = report["models"]["partial_pooling"]["pareto_k_high_rows"]
+    assert len(high) == min(report["models"]["partial_pooling"]["pareto_k_above_0.7"], loo.MAX_HIGH_K_ROWS)
+    assert [r["pareto_k"] for r in high] == sorted((r["pareto_k"] for r in high), reverse=True)
+    herd = plan.factors[0]
+    for r in high:
+        assert r["pareto_k"] > loo.PARETO_K_BAD and r["outcome"] == plan.y[r["row"]]
+        assert r["groups"] == {herd.name: herd.levels[herd.index[r["row"]]]}
 
 
 @pytest.fixture(scope="module")

@@ -146,18 +146,45 @@ def test_over_budget_thins_and_falls_back_to_group_loo(rail, monkeypatch):
 
 
 def test_prior_predictive_flags_absurd_priors(tmp_path):
-    # Thresholds are common practice (module constants); a normal(0, 1e5) intercept on travel
-    # times of 28-100 ns is absurd, the data-scaled defaults are not.
-    fine = check(kit.write(tmp_path, kit.RAIL)).plan
+    # Thresholds are common practice (module constants, README "Prior predictive check"); a
+    # normal(0, 1e5) intercept on travel times of 26-100 ns is absurd, priors on the data's scale
+    # (intercept within about 40 ns of the middle, spreads of a few tens of ns) are not.
+    fine = check(kit.write(tmp_path, kit.RAIL + "priors: {intercept: {normal: {mu: 60, sigma: 15}}, "
+                           "rail.sd: {half_normal: {sigma: 20}}, residual_sd: {half_normal: {sigma: 10}}}\n")).plan
     summary = prior_predictive.prior_predictive(fine, 1, draws=200)
-    assert summary["warnings"] == [] and summary["share_far_outside"] <= prior_predictive.FAR_SHARE
+    assert summary["warnings"] == [] and summary["passed"], summary["checks"]
+    assert "every check passed" in prior_predictive.prior_predictive_text(fine, 1, draws=200)
     wide = check(kit.write(tmp_path, kit.RAIL + "priors: {intercept: {normal: {mu: 0, sigma: 100000}}}\n")).plan
     text = prior_predictive.prior_predictive_text(wide, 1, draws=200)
-    assert "warning: the priors imply implausible values" in text
+    assert "the priors imply implausible values" in text and "every check passed" not in text
     logit = check(kit.write(tmp_path, kit.CBPP + "priors: {intercept: {normal: {mu: 0, sigma: 20}}}\n")).plan
     summary = prior_predictive.prior_predictive(logit, 1, draws=200)
     assert summary["share_probability_extreme"] > prior_predictive.EXTREME_P_SHARE
     assert any("below 1% or above 99%" in w for w in summary["warnings"])
+
+
+def test_prior_predictive_fails_far_negative_values_of_a_positive_outcome(tmp_path):
+    # The case of issue 13: a quarter of simulated values far below an outcome that is never negative
+    # (rail travel times 26-100 ns; an intercept prior of sd 150 ns puts about a third below 0, most of
+    # them beyond the observed range by more than its width). Formerly called "plausible" because
+    # fewer than 5% lay ten ranges away.
+    plan = check(kit.write(tmp_path, kit.RAIL + "priors: {intercept: {normal: {mu: 60, sigma: 150}}, "
+                           "rail.sd: {half_normal: {sigma: 20}}, residual_sd: {half_normal: {sigma: 10}}}\n")).plan
+    summary = prior_predictive.prior_predictive(plan, 1, draws=200)
+    checks = {c["name"]: c for c in summary["checks"]}
+    assert summary["share_far_outside"] > prior_predictive.FAR_SHARE and not checks["far_outside"]["passed"]
+    assert summary["share_negative"] > prior_predictive.NEGATIVE_SHARE and not checks["negative"]["passed"]
+    assert not summary["passed"] and len(summary["warnings"]) == 2
+
+
+def test_prior_predictive_fails_a_third_of_probabilities_at_the_edges(tmp_path):
+    # The other case of issue 13: about a third of row probabilities below 1% or above 99% was
+    # formerly under the 50% limit. An intercept of sd 4 on the logit scale (CBPP, 15 herds) puts
+    # roughly that share at the edges.
+    plan = check(kit.write(tmp_path, kit.CBPP + "priors: {intercept: {normal: {mu: -2, sigma: 4}}}\n")).plan
+    summary = prior_predictive.prior_predictive(plan, 1, draws=200)
+    assert 0.2 < summary["share_probability_extreme"] < 0.5
+    assert not summary["passed"] and "every check passed" not in prior_predictive.prior_predictive_text(plan, 1, 200)
 
 
 def test_over_work_budget_summaries_use_thinned_draws(rail, monkeypatch):

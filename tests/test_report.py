@@ -206,6 +206,46 @@ def test_provenance_and_caution_are_present(passing):
     assert "qualified analyst" in caution and "health or safety" in caution
 
 
+def test_provenance_lists_overrides_as_key_value(failing):
+    # The failing fixture is fitted with overrides of two gate keys (test_report_fixture.build_run).
+    provenance = Page(failing[1]).find("section", id="provenance")[0][2]
+    assert "gate.r_hat_max = 1.0; gate.ess_bulk_min = 100000" in provenance
+
+
+def test_failed_check_plots_its_worst_parameter(failing):
+    run, html = failing
+    diagnostics = json.loads((run / "diagnostics.json").read_text())
+    worst = next(c["worst_parameter"] for c in diagnostics["checks"] if c["name"] == "ess_bulk")
+    assert "__" not in worst
+    figure = [a for _, a, _ in Page(html).find("img") if worst in a.get("alt", "")]
+    assert figure, worst
+    assert "What failed: the worst parameters" in _text(html)
+
+
+def test_fit_section_shows_pareto_k_rows_and_calibration(run_root, tmp_path):
+    # loo.json and calibration.json as hierwork.results writes them (docs/predictive.md); two rows of
+    # the run are given a Pareto k above 0.7 so that the report must name them.
+    run = copy_run(build_run(run_root), tmp_path / "high-k")
+    loo = json.loads((run / "loo.json").read_text())
+    record = loo["models"]["partial_pooling"]
+    record.update({"pareto_k_above_0.7": 2, "pareto_k_max": 0.91, "pareto_k_high_rows": [
+        {"row": 16, "pareto_k": 0.91, "outcome": 7.25, "groups": {"farm": "north_02"}},
+        {"row": 3, "pareto_k": 0.74, "outcome": 2.5, "groups": {"farm": "Hill & Dale"}}]})
+    (run / "loo.json").write_text(json.dumps(loo))
+    html = render_report(run)
+    fit = Page(html).find("section", id="fit")[0][2]
+    assert "2 of " in fit and "Pareto k above 0.7" in fit
+    assert "row 17 (farm north_02, outcome 7.25, k = 0.91)" in fit and "row 4 (farm Hill & Dale" in fit
+    calibration = json.loads((run / "calibration.json").read_text())
+    level = calibration["levels"][0]
+    worst = level["by_factor"]["farm"]["worst_group"]
+    assert f"inside the {level['nominal']:.0%} interval" in fit and worst in fit
+    write_report(run)
+    summary = (run / "summary.md").read_text()
+    assert "row 17 (farm north\\_02" in summary and "Calibration of the predictive intervals" in summary
+    assert "Not stored" not in html
+
+
 def test_missing_files_are_named_and_the_rest_still_renders(run_root, tmp_path):
     run = copy_run(build_run(run_root), tmp_path / "partial")
     for name in ("posterior.nc", "pooling.csv", "summary.csv"):
@@ -262,8 +302,8 @@ def test_check_line_states_the_miss():
 
 
 def test_fmt_keeps_four_significant_digits():
-    assert [fmt(v) for v in (4.12345, 0.012345, 1234.0, 123456.7, 0.00012, float("nan"), None)] \
-        == ["4.123", "0.01235", "1234", "123,457", "1.200e-04", "-", "-"]
+    assert [fmt(v) for v in (4.12345, 0.012345, 1234.0, 123456.7, 0.00012, -8.858e-4, 3e-6, float("nan"), None)] \
+        == ["4.123", "0.01235", "1234", "123,457", "0.00012", "-0.0008858", "3.000e-06", "-", "-"]
 
 
 def test_thousands_of_groups_draw_a_capped_scatter():
@@ -292,15 +332,16 @@ def test_count_outcome_ppc_compares_shares_per_value():
     idata = az.from_dict(posterior={"b": rng.normal(size=(2, 50, 1))},
                          posterior_predictive={"defects": rng.poisson(2.0, (2, 50, 80))},
                          observed_data={"defects": observed})
-    plot = diagnostic_figures.ppc_plot(idata)
+    plot = diagnostic_figures.ppc_plot(idata, outcome="defects")
     assert plot.alt == ("Posterior predictive check of defects: the share of rows at each value "
-                        "of the 80 observed values drawn over 40 data sets replicated from the "
+                        "of defects in the 80 observed rows drawn over 40 data sets replicated from the "
                         "posterior.")
+    assert ">defects<" in plot.svg  # the axis is labelled with the outcome column
     assert diagnostic_figures.ppc_plot(az.from_dict(posterior={"b": rng.normal(size=(2, 50))})) is None
 
 
 def test_hyperparameters_follow_the_posterior_naming_contract():
-    # docs/contracts.md, "Names inside posterior.nc".
+    # docs/contracts.md, "Names inside posterior.nc"; shown by the names of README, "Parameter names".
     import arviz as az
 
     rng = np.random.default_rng(6)
@@ -315,8 +356,8 @@ def test_hyperparameters_follow_the_posterior_naming_contract():
               "farm__corr": ["farm__term", "farm__term_bis"],
               "farm__effect": ["farm", "farm__term"]})
     labels = [label for label, _, _ in diagnostic_figures.hyperparameters(idata.posterior)]
-    assert labels == ["b[intercept]", "b[nitrogen_kg]", "residual_sd", "farm__sd[intercept]",
-                      "farm__sd[nitrogen_kg]", "farm__gamma[soil_carbon]"]
+    assert labels == ["intercept", "nitrogen_kg", "residual_sd", "farm.sd",
+                      "farm.nitrogen_kg.sd", "farm.soil_carbon"]
 
 
 def test_long_group_tables_are_cut_with_a_pointer_to_the_csv(run_root, monkeypatch):

@@ -66,24 +66,31 @@ def _data(seed=11):
 
 
 def build_run(root: Path, *, failing: bool = False, shift: float = 0.0,
-              with_ppc: bool = True) -> Path:
+              with_ppc: bool = True, farm_sd_prior: float | None = None) -> Path:
     """A real run folder written by ``hierwork.fit`` under ``root``; its path.
 
     ``failing`` tightens the gate so that a genuine check fails (the bulk ESS
     minimum); ``shift`` adds a constant to the group estimates afterwards, so
     that a compare test knows exactly which estimates moved and by how much;
-    ``with_ppc`` False removes the posterior predictive draws from posterior.nc.
+    ``with_ppc`` False removes the posterior predictive draws from posterior.nc;
+    ``farm_sd_prior`` sets the prior of ``farm.sd`` to a half-normal of that scale
+    (everything else as in the default run).
     """
     import hierwork
 
     run = root / ("run-failing" if failing else f"run-{shift:g}") / ("" if with_ppc else "no-ppc")
+    if farm_sd_prior is not None:
+        run = root / f"run-prior-{farm_sd_prior:g}"
     if (run / "provenance.json").is_file():
         return run
     data_path = root / "plots.csv"
     if not data_path.is_file():
         _data().to_csv(data_path, index=False)
-    spec_path = root / "plot yield.yaml"
-    spec_path.write_text(SPEC_TEXT.format(data=data_path, r_hat_max=1.05, ess_bulk_min=100))
+    spec_path = root / ("plot yield.yaml" if farm_sd_prior is None else f"prior {farm_sd_prior:g}.yaml")
+    text = SPEC_TEXT.format(data=data_path, r_hat_max=1.05, ess_bulk_min=100)
+    if farm_sd_prior is not None:
+        text += f"priors:\n  farm.sd: {{half_normal: {{sigma: {farm_sd_prior:g}}}}}\n"
+    spec_path.write_text(text)
     overrides = {"gate.r_hat_max": 1.0, "gate.ess_bulk_min": 100000} if failing else None
     hierwork.fit(spec_path, out=run, force=True, overrides=overrides, progress=False)
     if shift:

@@ -44,12 +44,13 @@ def _kinds(failing: list[Mapping]) -> set[str]:
 
 
 def failing_factors(failing: list[Mapping], factors) -> list[str]:
-    """Factors named by the failing checks' ``worst_parameter`` (``F__sd``, ``F__effect[...]``)."""
+    """Factors named by the failing checks' ``worst_parameter``: reader-facing names (``F.sd``,
+    ``F=G T``; :mod:`hierwork.names`) and the internal ones of older runs (``F__sd``, ``F__effect[...]``)."""
     found = []
     for check in failing:
         param = str(check.get("worst_parameter") or "")
         for factor in sorted(factors, key=len, reverse=True):
-            if re.match(rf"^{re.escape(factor)}__\w", param) and factor not in found:
+            if re.match(rf"^{re.escape(factor)}(__\w|[.=])", param) and factor not in found:
                 found.append(factor)
                 break
     return found

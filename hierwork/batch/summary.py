@@ -1,13 +1,17 @@
 """Morning summary: ``BATCH_DIR/index.html`` and ``index.md``.
 
-One row per job (verdict, key numbers of the run that counts, attempts, a link
-to its report) and, below, every attempt with the remedy that led to it.
-Rewritten after every job, through a temporary file and a rename, so even a
-batch that was killed leaves a readable summary.
+One row per job -- its title, verdict, key numbers, headline estimate (the
+population value on the outcome's scale, from ``summary.csv``), the worst
+parameter of a failed check (reader-facing names, :mod:`hierwork.names`),
+attempts and a link to the report of its best attempt (passed, else the fewest
+failing checks, else the latest) -- and, below, every attempt with the remedy
+that led to it. The page has the style of report.html
+(:func:`hierwork.report.page.page`). Rewritten after every job, through a
+temporary file and a rename, so even a batch that was killed leaves a readable
+summary.
 """
 from __future__ import annotations
 
-import html
 import json
 import os
 import tempfile
@@ -25,7 +29,8 @@ CAUTION = ("Model-based estimates, to be reviewed by a qualified analyst before 
 VERDICTS = {"passed": "passed the gate", "failed": "failed the gate", "invalid": "bad input",
             "crashed": "crashed", "running": "running", "pending": "waiting",
             "interrupted": "interrupted"}
-COLUMNS = ("job", "verdict", "attempts", "max R-hat", "min ESS", "divergences", "time", "report", "note")
+COLUMNS = ("job", "verdict", "attempts", "max R-hat", "min ESS", "divergences", "title", "headline estimate",
+           "worst parameter", "time", "report", "note")
 
 
 def key_numbers(diagnostics: dict | None) -> dict:
@@ -49,18 +54,58 @@ def key_numbers(diagnostics: dict | None) -> dict:
             "divergences": shown("divergences", whole=True)}
 
 
+def best_attempt(attempts: list[dict]) -> dict | None:
+    """The attempt to show: passed, else the fewest failing checks, else the latest (ties: the latest)."""
+    def rank(a):
+        diagnostics = json.loads(a["diagnostics"]) if a.get("diagnostics") else None
+        if diagnostics is None:
+            return (2, 0, -a["number"])
+        failed = sum(1 for c in diagnostics.get("checks", []) if not c.get("passed"))
+        return (0 if diagnostics.get("passed") else 1, failed, -a["number"])
+
+    return min(attempts, key=rank) if attempts else None
+
+
+_NO_HEADLINE = {"title": "", "headline estimate": "", "worst parameter": ""}
+
+
+def headline(run_dir: Path) -> dict:
+    """Title, population value on the outcome's scale and worst failing parameters of a run folder, as text."""
+    from hierwork.errors import HierworkError
+    from hierwork.report.verdict import verdict
+    from hierwork.report.view import View
+    from hierwork.runfolder import Run
+
+    try:
+        run = Run.open(run_dir)
+        view = View.of(run)
+        population = view.population("intercept")
+        failed = verdict(run.diagnostics).failed
+        title = run.title
+    except (HierworkError, OSError, ValueError, KeyError):  # still being written, or unreadable
+        return dict(_NO_HEADLINE)
+    estimate = ""
+    if population:
+        estimate = (f"{view.scale.text(population['mean'])} ({view.level} interval "
+                    f"{view.scale.text(population['lower'])} to {view.scale.text(population['upper'])})")
+    worst = "; ".join(dict.fromkeys(c.parameter for c in failed if c.parameter))
+    return {"title": title, "headline estimate": estimate, "worst parameter": worst}
+
+
 def rows(batch_dir: Path, queue: Queue) -> list[dict]:
     """The summary's rows: one dict per job with its attempts under ``"attempts"``."""
     result = []
     now = time.time()
     for job in queue.jobs():
         attempts = queue.attempts(job["name"])
-        shown = next((a for a in attempts if a["number"] == job["counting"]), attempts[-1] if attempts else None)
+        shown = best_attempt(attempts)
         diagnostics = json.loads(shown["diagnostics"]) if shown and shown["diagnostics"] else None
         report = _report(batch_dir, shown)
         took = (job["finished"] or now) - job["started"] if job["started"] else None
+        found = headline(batch_dir / shown["run_dir"]) if report else dict(_NO_HEADLINE)
         row = {"job": job["name"], "status": job["status"], "verdict": VERDICTS.get(job["status"], job["status"]),
-               "attempts": len(attempts), **key_numbers(diagnostics),
+               "attempts": len(attempts), **key_numbers(diagnostics), **found,
+               "shown_attempt": shown["number"] if shown else None,
                "time": duration(took) if took is not None else "", "report": report,
                "note": job["message"] or "", "source": job["source"], "attempt_rows": []}
         for a in attempts:
@@ -91,9 +136,10 @@ def render_markdown(batch_dir: Path, queue: Queue) -> str:
            f"Written {datetime.now():%Y-%m-%d %H:%M}. {jobs_text(len(data))}: {tally}.", "", f"*{CAUTION}*", "",
            "| " + " | ".join(COLUMNS) + " |", "|" + "---|" * len(COLUMNS)]
     for r in data:
-        link = f"[report]({quote(r['report'])})" if r["report"] else ""
+        link = f"[report of attempt {r['shown_attempt']}]({quote(r['report'])})" if r["report"] else ""
         cells = [r["job"], r["verdict"], str(r["attempts"]), _num(r["max R-hat"]), _num(r["min ESS"]),
-                 _num(r["divergences"]), r["time"], link, r["note"]]
+                 _num(r["divergences"]), r["title"], r["headline estimate"], r["worst parameter"], r["time"],
+                 link, r["note"]]
         out.append("| " + " | ".join(_md(c) if c != link else c for c in cells) + " |")
     retried = [r for r in data if r["attempts"] > 1]
     if retried:
@@ -116,50 +162,43 @@ def _md(text) -> str:
 
 
 def render_html(batch_dir: Path, queue: Queue) -> str:
-    """``index.html``: the summary as a self-contained page (every user string escaped)."""
-    e = html.escape
+    """``index.html``: the summary as a self-contained page in the report's style (every user string escaped)."""
+    from hierwork.report.markup import el
+    from hierwork.report.page import page
+
     data = rows(batch_dir, queue)
     tally = ", ".join(f"{n} {s}" for s, n in counts(queue.jobs()).items()) or "no jobs"
-    body = [f"<h1>Batch summary: {e(batch_dir.name)}</h1>",
-            f"<p>Written {datetime.now():%Y-%m-%d %H:%M}. {jobs_text(len(data))}: {e(tally)}.</p>",
-            f'<p class="caution">{e(CAUTION)}</p>',
-            "<table><thead><tr>" + "".join(f"<th>{e(c)}</th>" for c in COLUMNS) + "</tr></thead><tbody>"]
+    head = el("tr", [el("th", c, scope="col", class_="label") for c in COLUMNS])
+    body_rows = []
     for r in data:
-        link = f'<a href="{e(quote(r["report"]))}">report</a>' if r["report"] else ""
-        cells = [f'<td title="{e(r["source"])}">{e(r["job"])}</td>',
-                 f'<td class="{e(r["status"])}">{e(r["verdict"])}</td>',
-                 f"<td>{r['attempts']}</td>",
-                 *(f'<td class="num">{_num(r[k])}</td>'
-                   for k in ("max R-hat", "min ESS", "divergences")),
-                 f"<td>{e(r['time'])}</td>", f"<td>{link}</td>", f"<td>{e(r['note'])}</td>"]
-        body.append("<tr>" + "".join(cells) + "</tr>")
-    body.append("</tbody></table>")
+        link = el("a", f"report of attempt {r['shown_attempt']}", href=quote(r["report"])) if r["report"] else ""
+        bad = r["status"] in ("failed", "crashed", "invalid")
+        cells = [el("td", r["job"], title=r["source"], class_="label"),
+                 el("td", r["verdict"], class_="bad" if bad else "label"),
+                 el("td", str(r["attempts"])),
+                 *(el("td", _num(r[k])) for k in ("max R-hat", "min ESS", "divergences")),
+                 *(el("td", r[k], class_="label") for k in ("title", "headline estimate", "worst parameter")),
+                 el("td", r["time"]), el("td", link, class_="label"), el("td", r["note"], class_="label")]
+        body_rows.append(el("tr", cells))
+    attempts = []
     for r in (r for r in data if r["attempts"] > 1):
-        body.append(f"<h2>Attempts: {e(r['job'])}</h2><ol>")
+        items = []
         for a in r["attempt_rows"]:
-            link = f' (<a href="{e(quote(a["report"]))}">report</a>)' if a["report"] else ""
-            note = f": {e(a['note'])}" if a["note"] else ""
-            body.append(f"<li>{e(a['why'])} &rarr; <span class=\"{e(a['status'])}\">{e(a['status'])}</span>"
-                        f"{note}{link}</li>")
-        body.append("</ol>")
-    return PAGE.format(title=e(f"Batch summary: {batch_dir.name}"), body="\n".join(body))
-
-
-PAGE = """<!DOCTYPE html>
-<html lang="en"><head><meta charset="utf-8"><title>{title}</title>
-<style>
-body {{ font: 15px/1.45 system-ui, sans-serif; margin: 2rem auto; max-width: 72rem; color: #1d2a33; }}
-table {{ border-collapse: collapse; width: 100%; }}
-th, td {{ border-bottom: 1px solid #d5dde3; padding: .35rem .6rem; text-align: left; vertical-align: top; }}
-th {{ background: #eef3f6; }}
-td.num {{ text-align: right; font-variant-numeric: tabular-nums; }}
-.passed {{ color: #1f6e43; }} .failed, .crashed, .invalid {{ color: #9c2b23; font-weight: 600; }}
-.caution {{ border-left: 4px solid #c98a12; padding-left: .7rem; }}
-</style></head>
-<body>
-{body}
-</body></html>
-"""
+            link = [" (", el("a", "report", href=quote(a["report"])), ")"] if a["report"] else ""
+            note = f": {a['note']}" if a["note"] else ""
+            items.append(el("li", f"{a['why']} \u2192 ", el("strong", a["status"]), note, link))
+        attempts.append(el("section", el("h3", f"Attempts: {r['job']}"), el("ol", items)))
+    content = el("main",
+                 el("header", el("h1", f"Batch summary: {batch_dir.name}"),
+                    el("p", f"Written {datetime.now():%Y-%m-%d %H:%M}. {jobs_text(len(data))}: {tally}.")),
+                 el("section", el("h2", "Jobs"),
+                    el("p", "Headline estimate: the population value (a typical group) on the outcome's scale at "
+                       "each run's reference values. The report linked is the job's best attempt: passed, else "
+                       "the one with the fewest failing checks.", class_="note"),
+                    el("div", el("table", el("thead", head), el("tbody", body_rows)), class_="scroll"), id="jobs"),
+                 el("section", el("h2", "Attempts"), attempts, id="attempts") if attempts else "",
+                 el("section", el("h2", "Caution"), el("p", CAUTION), id="caution", class_="caution"))
+    return page(f"Batch summary: {batch_dir.name}", content, script=False)
 
 
 def write(batch_dir, queue: Queue) -> None:

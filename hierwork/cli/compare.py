@@ -8,13 +8,28 @@ from . import printable
 
 def register(sub) -> None:
     p = sub.add_parser("compare", help="spec, estimate and diagnostics changes between two runs",
-                       description="Compare two run folders: spec differences, estimates whose "
-                                   "posterior mean moved by more than their posterior SD, and "
-                                   "the gate's checks side by side.")
+                       description="Compare two run folders: spec differences (with the values each "
+                                   "run used), every parameter side by side with its change in "
+                                   "posterior SDs, the group estimates that moved, and the gate's "
+                                   "checks side by side.")
     p.add_argument("run_a", metavar="RUN_A", help="reference run folder")
     p.add_argument("run_b", metavar="RUN_B", help="run folder to compare with it")
     p.add_argument("--html", metavar="OUT", help="also write the comparison as an HTML page")
+    p.add_argument("--moved", metavar="SDS", type=_positive, default=1.0,
+                   help="change, in posterior SDs, beyond which an estimate counts as moved (default 1)")
     p.set_defaults(func=run)
+
+
+def _positive(text: str) -> float:
+    import argparse
+
+    try:
+        value = float(text)
+    except ValueError:
+        value = -1.0
+    if not value > 0:
+        raise argparse.ArgumentTypeError(f"must be a positive number of posterior SDs, not {text!r}")
+    return value
 
 
 def run(args) -> int:
@@ -22,7 +37,7 @@ def run(args) -> int:
     from hierwork.errors import HierworkError
     from hierwork.runfolder import write_atomic
 
-    comparison = hierwork.compare_runs(args.run_a, args.run_b)
+    comparison = hierwork.compare_runs(args.run_a, args.run_b, moved=args.moved)
     print(printable(comparison.text()), end="")
     if args.html:
         out = Path(args.html)

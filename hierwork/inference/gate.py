@@ -15,6 +15,7 @@ import numpy as np
 
 from hierwork.inference.checks import CHECKS, broken_text
 from hierwork.inference.convergence import diagnose
+from hierwork.names import factor_terms, parameter_name
 
 
 @dataclass(frozen=True)
@@ -60,8 +61,8 @@ class GateResult:
 def _worst(post) -> dict:
     """Worst R-hat (max), bulk and tail ESS (min) over every element of every variable.
 
-    Returns ``{"r_hat" | "ess_bulk" | "ess_tail": (value, label)}`` with labels
-    ``var[coord, ...]``; elements whose value is NaN (constants, such as the unit
+    Returns ``{"r_hat" | "ess_bulk" | "ess_tail": (value, name)}`` with reader-facing
+    names (:mod:`hierwork.names`); elements whose value is NaN (constants, such as the unit
     diagonal of a correlation matrix) are skipped.
     """
     worst = {"r_hat": (None, None), "ess_bulk": (None, None), "ess_tail": (None, None)}
@@ -76,17 +77,15 @@ def _worst(post) -> dict:
             idx = int(np.nanargmax(result) if key == "r_hat" else np.nanargmin(result))
             val, best = float(result[idx]), worst[key][0]
             if best is None or (val > best if key == "r_hat" else val < best):
-                worst[key] = (val, _label(name, da, np.unravel_index(idx, shape)))
+                worst[key] = (val, _label(post, name, da, np.unravel_index(idx, shape)))
     return {k: (float("nan") if v is None else v, at) for k, (v, at) in worst.items()}
 
 
-def _label(name, da, index) -> str:
-    """``name[coord, ...]`` of one element of a posterior variable (chain and draw left out)."""
+def _label(post, name, da, index) -> str:
+    """The reader-facing name of one element of a posterior variable (:mod:`hierwork.names`)."""
     dims = [d for d in da.dims if d not in ("chain", "draw")]
-    if not dims:
-        return str(name)
-    parts = [str(da.coords[d].values[i]) if d in da.coords else str(i) for d, i in zip(dims, index)]
-    return f"{name}[{', '.join(parts)}]"
+    coords = {d: (da.coords[d].values[i] if d in da.coords else i) for d, i in zip(dims, index)}
+    return parameter_name(name, coords, factor_terms(post, name))
 
 
 def evaluate_gate(idata, gate: dict, max_treedepth: int) -> GateResult:
@@ -159,7 +158,7 @@ def _divergence_hint(idata, divergences: int) -> str | None:
             v = values[..., k] if values.ndim > 2 else values
             ratio = float(np.mean(v[div]) / np.mean(v)) if np.mean(v) > 0 else np.inf
             if ratio < worst_ratio:
-                term = idata.posterior[name].coords[idata.posterior[name].dims[-1]].values[k] \
-                    if values.ndim > 2 else ""
-                worst, worst_ratio = f"{name}[{term}]" if term != "" else name, ratio
+                array = idata.posterior[name]
+                coords = {array.dims[-1]: array.coords[array.dims[-1]].values[k]} if values.ndim > 2 else {}
+                worst, worst_ratio = parameter_name(name, coords, factor_terms(idata.posterior, name)), ratio
     return worst

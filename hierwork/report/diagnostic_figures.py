@@ -7,12 +7,16 @@ quantile bands of replicated counts) is part of drawing it.
 """
 from __future__ import annotations
 
+import textwrap
+
 import numpy as np
+from matplotlib.ticker import FuncFormatter
 
 from hierwork.formatting import number as fmt
+from hierwork.names import element_names, find, parameter_name, readable
 from hierwork.report.plotting import GREY, PALETTE, Plot, clip_text, finish, new_figure, styled
 
-__all__ = ["trace_rank_plot", "energy_plot", "divergence_plot", "ppc_plot", "hyperparameters",
+__all__ = ["trace_rank_plot", "worst_parameters", "energy_plot", "divergence_plot", "ppc_plot", "hyperparameters",
            "MAX_TRACE_PARAMETERS"]
 
 _CHAIN_COLOURS = [PALETTE[k] for k in ("blue", "orange", "green", "purple", "sky",
@@ -22,37 +26,48 @@ MAX_TRACE_PARAMETERS = 10
 
 
 def hyperparameters(posterior) -> list[tuple[str, str, dict]]:
-    """The population and variance parameters as ``(label, variable, selection)``.
+    """The population and variance parameters as ``(name, variable, selection)``.
 
-    Population coefficients ``b``, ``residual_sd``, every ``F__sd``, group-level
-    predictor coefficients ``F__gamma`` and any other parameter without
-    dimensions (docs/contracts.md, names inside posterior.nc).
+    Population coefficients ``b``, every ``F__sd``, group-level predictor
+    coefficients ``F__gamma`` and any other parameter without dimensions
+    (docs/contracts.md, names inside posterior.nc), named as readers see them
+    (:mod:`hierwork.names`).
     """
     chosen = []
     for name, array in posterior.data_vars.items():
         dims = [d for d in array.dims if d not in ("chain", "draw")]
-        if not (name == "b" or name.endswith(("__sd", "__gamma")) or not dims):
-            continue
-        for index in np.ndindex(*[array.sizes[d] for d in dims]):
-            selection = {d: array[d].values[i] for d, i in zip(dims, index)}
-            label = name + ("[" + ", ".join(str(v) for v in selection.values()) + "]"
-                            if selection else "")
-            chosen.append((label, name, selection))
+        if name == "b" or name.endswith(("__sd", "__gamma")) or (not dims and name not in ("b_centred_intercept", "b_intercept")):
+            chosen += [(label, name, selection) for label, selection in element_names(posterior, name)]
     return chosen
 
 
-@styled
-def trace_rank_plot(idata, stamp: str | None = None) -> Plot | None:
-    """Traces and rank histograms per chain of the hyperparameters.
+def worst_parameters(posterior, failed) -> list[tuple[str, str, dict]]:
+    """``(name, variable, selection)`` of the worst parameter of each failed check, once each, when in the posterior."""
+    out, seen = [], set()
+    for check in failed:
+        if not check.parameter or check.parameter in seen:
+            continue
+        found = find(posterior, check.parameter)
+        if found is not None:
+            seen.add(check.parameter)
+            out.append((readable(check.parameter), *found))
+    return out
 
-    Rank plots (Vehtari et al. 2021, Bayesian Analysis 16(2), section 4.1):
-    ranks of all draws pooled over chains, one histogram per chain; chains that
-    explore the same distribution give flat, overlapping histograms.
+
+@styled
+def trace_rank_plot(idata, stamp: str | None = None, chosen: list | None = None, why: str = "") -> Plot | None:
+    """Traces and rank histograms per chain of ``chosen`` parameters (default: the hyperparameters).
+
+    ``chosen`` holds ``(name, variable, selection)`` triples; ``why`` opens the
+    caption (for instance, which checks those parameters failed). Rank plots
+    (Vehtari et al. 2021, Bayesian Analysis 16(2), section 4.1): ranks of all
+    draws pooled over chains, one histogram per chain; chains that explore the
+    same distribution give flat, overlapping histograms.
     """
     from scipy.stats import rankdata
 
     post = idata.posterior
-    params = hyperparameters(post)
+    params = hyperparameters(post) if chosen is None else chosen
     if not params:
         return None
     shown = params[:MAX_TRACE_PARAMETERS]
@@ -70,7 +85,7 @@ def trace_rank_plot(idata, stamp: str | None = None) -> Plot | None:
                            baseline=None)
         rank_ax.axhline(n_draws / (len(bins) - 1), color=GREY, linestyle=":", linewidth=1)
         rank_ax.set_ylim(bottom=0)
-        trace_ax.set_ylabel(clip_text(label, 26), rotation=0, ha="right", va="center")
+        trace_ax.set_ylabel("\n".join(textwrap.wrap(clip_text(label, 66), 22)), rotation=0, ha="right", va="center")
         rank_ax.set_yticks([])
     axes[0, 0].set_title("trace (one colour per chain)", loc="left")
     axes[0, 1].set_title("rank histogram per chain", loc="left")
@@ -78,10 +93,11 @@ def trace_rank_plot(idata, stamp: str | None = None) -> Plot | None:
     axes[-1, 1].set_xlabel("rank among all draws")
     note = (f" Showing {len(shown)} of {len(params)} parameters; the rest are in summary.csv."
             if len(params) > len(shown) else "")
-    alt = (f"Trace and rank plots of {len(shown)} population and variance parameters over "
+    what = "population and variance parameters" if chosen is None else "parameters"
+    alt = (f"Trace and rank plots of {len(shown)} {what} over "
            f"{n_chains} chains of {n_draws} draws: " + ", ".join(p[0] for p in shown) + ".")
-    caption = ("Left: each chain's draws in order; chains should overlap like noise around "
-               "one level. Right: ranks of the draws among all chains, one histogram per "
+    caption = ((why + " " if why else "") + "Left: each chain's draws in order; chains should overlap like noise "
+               "around one level. Right: ranks of the draws among all chains, one histogram per "
                "chain, the dotted line the count expected if all chains agree; roughly "
                "flat, overlapping histograms mean they do (Vehtari et al. 2021)." + note)
     return finish(fig, alt, caption, stamp)
@@ -143,9 +159,9 @@ def divergence_plot(idata, estimates, stamp: str | None = None) -> Plot | None:
         sd = post[f"{factor}__sd"]
         sd_term = sd[f"{factor}__term"].values[0]
         y = np.log(sd.sel({f"{factor}__term": sd_term}).values.ravel())
-        y_label = clip_text(f"log {factor}__sd[{sd_term}]", 40)
+        y_label = clip_text("log " + parameter_name(f"{factor}__sd", {"t": sd_term}, list(sd[f"{factor}__term"].values)), 40)
         _scatter_divergent(ax_b, x_b, y, divergent)
-        ax_b.set_xlabel(clip_text(f"b[{first_term}]", 40))
+        ax_b.set_xlabel(clip_text(parameter_name("b", {"term": first_term}), 40))
         ax_b.set_ylabel(y_label)
         effect = post.get(f"{factor}__effect")
         group = _smallest_group(estimates, factor, effect)
@@ -154,7 +170,8 @@ def divergence_plot(idata, estimates, stamp: str | None = None) -> Plot | None:
             continue
         x_e = effect.sel({factor: group, f"{factor}__term": sd_term}).values.ravel()
         _scatter_divergent(ax_e, x_e, y, divergent)
-        ax_e.set_xlabel(clip_text(f"{factor}__effect of smallest group {group}", 50))
+        ax_e.set_xlabel(clip_text(parameter_name(f"{factor}__effect", {"g": group, "t": sd_term})
+                                  + " (smallest group)", 50))
     axes[0, 0].legend(frameon=False, loc="best")
     count = int(divergent.sum())
     found = (f"{count} of {divergent.size} draws ended in a divergent transition (crosses)."
@@ -191,13 +208,17 @@ def _smallest_group(estimates, factor, effect):
 # --- posterior predictive --------------------------------------------------------
 
 @styled
-def ppc_plot(idata, stamp: str | None = None, max_draws: int = 40) -> Plot | None:
-    """Observed outcome against outcomes replicated from the posterior.
+def ppc_plot(idata, stamp: str | None = None, max_draws: int = 40, outcome: str = "outcome",
+             trials: str = "trials") -> Plot | None:
+    """Observed outcome against outcomes replicated from the posterior; the axis is labelled ``outcome``
+    (binomial: as a share of the ``trials`` column).
 
-    Continuous outcomes: density histograms of ``max_draws`` replicated data
-    sets over the observed one. Counts (integer outcomes with at most 30
-    distinct values): observed frequency of each value against the 5% to 95%
-    range of its replicated frequency.
+    Binomial outcomes (``constant_data["trials"]``) are compared as
+    proportions of their trials, so that groups of very different size are on
+    one scale. Continuous outcomes and proportions: density histograms of
+    ``max_draws`` replicated data sets over the observed one. Counts (integer
+    outcomes with at most 30 distinct values): observed frequency of each value
+    against the 5% to 95% range of its replicated frequency.
     """
     observed_group = getattr(idata, "observed_data", None)
     predictive = getattr(idata, "posterior_predictive", None)
@@ -212,10 +233,18 @@ def ppc_plot(idata, stamp: str | None = None, max_draws: int = 40) -> Plot | Non
     replicated = replicated.reshape(replicated.shape[0], -1)
     pick = np.linspace(0, replicated.shape[0] - 1, min(max_draws, replicated.shape[0]))
     replicated = replicated[pick.round().astype(int)]
+    constant = getattr(idata, "constant_data", None)
+    per_row = None
+    if constant is not None and "trials" in constant and constant["trials"].size == observed.size:
+        per_row = constant["trials"].values.astype(float)
+        observed, replicated = observed / per_row, replicated / per_row
+        label = f"{outcome} as a share of {trials}"
+    else:
+        label = outcome
     fig = new_figure(5.6, 2.8)
     ax = fig.add_subplot()
     values = np.unique(observed)
-    if np.all(observed == np.round(observed)) and len(values) <= 30:
+    if per_row is None and np.all(observed == np.round(observed)) and len(values) <= 30:
         support = np.arange(min(values.min(), replicated.min()), max(values.max(), 0) + 1)
         support = support[support <= values.max() + 3]
         freq = np.array([[np.mean(r == v) for v in support] for r in replicated])
@@ -225,7 +254,9 @@ def ppc_plot(idata, stamp: str | None = None, max_draws: int = 40) -> Plot | Non
         ax.errorbar(support, (low + high) / 2, yerr=(high - low) / 2, fmt="none",
                     ecolor=PALETTE["black"], capsize=3, label="replicated, 5%\u201395%")
         ax.set_ylabel("share of rows")
-        kind = "share of rows at each value"
+        kind = f"share of rows at each value of {outcome}"
+        how = ("bars are the observed share of rows at each value, whiskers the 5% to 95% range of that share "
+               f"over {len(replicated)} data sets replicated from the posterior")
     else:
         bins = np.histogram_bin_edges(np.r_[observed, replicated.ravel()], bins=40)
         for r in replicated:
@@ -235,11 +266,15 @@ def ppc_plot(idata, stamp: str | None = None, max_draws: int = 40) -> Plot | Non
                   linewidth=1.8, label="observed")
         ax.plot([], [], color=PALETTE["sky"], label=f"{len(replicated)} replicated data sets")
         ax.set_yticks([])
-        kind = "distribution"
-    ax.set_xlabel(clip_text(name, 60))
+        kind = f"distribution of {label}"
+        how = (f"the black outline is the observed distribution of {label}, the light lines "
+               f"{len(replicated)} data sets replicated from the posterior")
+        if per_row is not None:
+            ax.xaxis.set_major_formatter(FuncFormatter(lambda v, _: f"{100 * v:.3g}%"))
+    ax.set_xlabel(clip_text(label, 60))
     ax.legend(frameon=False, loc="upper right")
-    alt = (f"Posterior predictive check of {name}: the {kind} of the {observed.size} observed "
-           f"values drawn over {len(replicated)} data sets replicated from the posterior.")
-    caption = ("Posterior predictive check: if the model describes the data, the observed "
-               "values (black or shaded) look like one more replicated data set.")
+    alt = (f"Posterior predictive check of {outcome}: the {kind} in the {observed.size} observed "
+           f"rows drawn over {len(replicated)} data sets replicated from the posterior.")
+    caption = (f"Posterior predictive check of {outcome}: {how}. If the model describes the data, the observed "
+               "values look like one more replicated data set.")
     return finish(fig, alt, caption, stamp)

@@ -56,14 +56,19 @@ def _thin(rows, note: list):
     return rows.iloc[pick]
 
 
-def _axis_range(rows, complete) -> tuple[float, float]:
+def _axis_range(rows, complete, scale: Scale | None = None, change: bool = False) -> tuple[float, float]:
     """The values a figure must show: every partially pooled interval and complete pooling, plus half
-    their span on either side (own-data estimates further out are marked at the edge)."""
+    their span on either side (own-data estimates further out are marked at the edge); a probability
+    axis stays within 0 to 1 and a rate's above 0."""
     values = np.r_[rows["outcome_lower"].to_numpy(dtype=float), rows["outcome_upper"].to_numpy(dtype=float),
                    np.asarray(complete, dtype=float)]
     low, high = np.nanmin(values), np.nanmax(values)
     margin = 0.5 * (high - low) if high > low else 1.0
-    return low - margin, high + margin
+    low, high = low - margin, high + margin
+    if scale is not None and scale.kind in ("probability", "rate") and not change:
+        low = max(low, 0.0)
+        high = min(high, 1.0) if scale.kind == "probability" else high
+    return low, high
 
 
 def _off_axis(own: np.ndarray, limits: tuple[float, float]) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
@@ -227,10 +232,11 @@ def pooling_plot(rows, factor: str, term: str, scale: Scale, interval: float, st
     axis = scale.axis_label(term)
     complete = rows["complete_pooling_outcome"].dropna().unique()
     if len(rows) <= MAX_FOREST_GROUPS:
-        fig, note = _forest(rows, axis, interval, complete, scale), ""
+        fig, note = _forest(rows, axis, interval, complete, scale, term != "intercept"), ""
     else:
-        fig, note = _scatter(rows, axis, complete, scale)
-    _, below, above = _off_axis(rows["no_pooling_outcome"].to_numpy(dtype=float), _axis_range(rows, complete))
+        fig, note = _scatter(rows, axis, complete, scale, term != "intercept")
+    _, below, above = _off_axis(rows["no_pooling_outcome"].to_numpy(dtype=float),
+                                _axis_range(rows, complete, scale, term != "intercept"))
     if (below | above).any():
         note += (f" {int((below | above).sum())} own-data estimates lie beyond the axis (triangles at its edge): "
                  f"too few rows to pin the group down at these values of the predictors.")
@@ -243,19 +249,32 @@ def pooling_plot(rows, factor: str, term: str, scale: Scale, interval: float, st
                 f"{scale.text(r['no_pooling_outcome'], change)} on its own data to "
                 f"{scale.text(r['outcome_mean'], change)} with partial pooling")
 
+    values = ", ".join(scale.text(v, change) for v in sorted(complete)[:4]) + (", ..." if len(complete) > 4 else "")
     flat = (f"the complete-pooling value is {scale.text(complete[0], change)}" if len(complete) == 1
-            else "complete-pooling values differ by group")
+            else f"the complete-pooling values are {values} (they differ with the group-level predictors)")
     alt = (f"Pooling plot for {factor}, {what}, {len(rows)} groups: {moved(smallest)}; "
            f"{moved(largest)}; {flat}.")
-    caption = (f"{factor}, {what}: hollow circles are each group's estimate from its own "
-               f"data alone (no pooling; circle area grows with the group's {_volume_name(size_column, scale)}), filled "
-               f"points and bars the partially pooled posterior mean and {interval:.0%} "
-               f"interval, the dashed line complete pooling (one value for all groups). "
-               f"Small groups are pulled further towards the population value. {note}")
+    volume_name = _volume_name(size_column, scale)
+    if len(complete) == 1:
+        complete_text = f"the dashed line complete pooling (one value for all groups, {scale.text(complete[0], change)})"
+    else:
+        complete_text = (f"the black ticks complete pooling, which gives {len(complete)} values here ({values}): "
+                         "one per combination of the group-level predictors")
+    if len(rows) <= MAX_FOREST_GROUPS:
+        caption = (f"{factor}, {what}: hollow circles are each group's estimate from its own data alone (no pooling; "
+                   f"circle area grows with the group's {volume_name}), filled points and bars the partially pooled "
+                   f"posterior mean and {interval:.0%} interval, {complete_text}. Small groups are pulled further "
+                   f"towards the population value. {note}")
+    else:
+        where = (f"the dashed line is complete pooling ({scale.text(complete[0], change)})" if len(complete) == 1
+                 else f"complete pooling gives {len(complete)} values ({values}), not drawn")
+        caption = (f"{factor}, {what}, {len(rows)} groups: each point is one group, its own-data estimate (no pooling) "
+                   f"across and its partially pooled posterior mean up; point area grows with the group's "
+                   f"{volume_name}; {where}. {note}")
     return finish(fig, alt, caption.strip(), stamp)
 
 
-def _forest(rows, axis: str, interval: float, complete, scale: Scale):
+def _forest(rows, axis: str, interval: float, complete, scale: Scale, change: bool):
     size_column, sizes = volume(rows)
     fig = new_figure(6.6, 1.0 + 0.24 * len(rows))
     ax = fig.add_subplot()
@@ -267,7 +286,7 @@ def _forest(rows, axis: str, interval: float, complete, scale: Scale):
                    label="complete pooling")
     ax.hlines(y, rows["outcome_lower"], rows["outcome_upper"], color=PALETTE["blue"], linewidth=2,
               label=f"partial pooling, {interval:.0%} interval")
-    limits = _axis_range(rows, complete)
+    limits = _axis_range(rows, complete, scale, change)
     own, below, above = _off_axis(rows["no_pooling_outcome"].to_numpy(dtype=float), limits)
     mean = rows["outcome_mean"].to_numpy(dtype=float)
     for yi, start, end in zip(y, own, mean):
@@ -293,13 +312,13 @@ def _forest(rows, axis: str, interval: float, complete, scale: Scale):
     return fig
 
 
-def _scatter(rows, axis: str, complete, scale: Scale):
+def _scatter(rows, axis: str, complete, scale: Scale, change: bool):
     note: list = []
     rows = _thin(rows, note)
     _, sizes = volume(rows)
     fig = new_figure(6.0, 4.4)
     ax = fig.add_subplot()
-    own, _, _ = _off_axis(rows["no_pooling_outcome"].to_numpy(dtype=float), _axis_range(rows, complete))
+    own, _, _ = _off_axis(rows["no_pooling_outcome"].to_numpy(dtype=float), _axis_range(rows, complete, scale, change))
     mean = rows["outcome_mean"].to_numpy(dtype=float)
     finite = np.isfinite(own)
     low, high = np.nanmin(np.r_[own, mean]), np.nanmax(np.r_[own, mean])
@@ -309,10 +328,10 @@ def _scatter(rows, axis: str, complete, scale: Scale):
     ax.scatter(own[finite], mean[finite], s=_areas(sizes)[finite] / 3, color=PALETTE["blue"], alpha=0.6,
                edgecolors="none", rasterized=True, label="group (area grows with its information)")
     ax.set_xlabel(clip_text("own data only: " + axis, 90))
-    ax.set_ylabel("partial pooling mean")
+    ax.set_ylabel(clip_text("partial pooling: " + axis, 90))
     scale.format_axis(ax.xaxis)
     scale.format_axis(ax.yaxis)
     ax.legend(loc="upper left", frameon=False)
-    text = (f"With {len(rows)} groups, each point is one group: the further from the grey "
-            f"y = x line towards the dashed line, the more it was pooled. " + " ".join(note))
+    text = ("The further a point lies from the grey y = x line (no pooling), the more the group was pooled. "
+            + " ".join(note))
     return fig, text

@@ -14,6 +14,7 @@ import pandas as pd
 
 from hierwork.formatting import number as fmt
 from hierwork.plan.describe import missing_text
+from hierwork.report import fitcheck
 from hierwork.report.page import CAUTION
 from hierwork.report.standout import factor_sentences, standing_out
 from hierwork.report.verdict import verdict
@@ -100,6 +101,11 @@ def _groups(view: View) -> list[str]:
     return lines
 
 
+def _paragraphs(sentences: list[str]) -> list[str]:
+    """Each sentence its own Markdown paragraph."""
+    return [line for sentence in sentences for line in (md_escape(sentence), "")]
+
+
 def render_markdown(run: Run) -> str:
     """The ``summary.md`` text of ``run``."""
     v = verdict(run.diagnostics)
@@ -128,6 +134,16 @@ def render_markdown(run: Run) -> str:
         lines += ["## Pooling factor (Gelman and Pardoe 2006)", "",
                   *_table(run.pooling, {"factor": "factor", "term": "term",
                                         "n_groups": "groups", "pooling_factor": "lambda"}), ""]
+    lines += ["## Fit to the data", "", "### Leave-one-out (PSIS-LOO)", "",
+              *_paragraphs(fitcheck.loo_sentences(run))]
+    high = fitcheck.high_k_table(run)
+    if len(high):
+        lines += [*_table(high, {c: c.replace("_", " ") for c in high.columns}), ""]
+    lines += ["### Calibration of the predictive intervals", "", *_paragraphs(fitcheck.calibration_sentences(run))]
+    calibration = fitcheck.calibration_table(run)
+    if calibration is not None:
+        lines += [*_table(calibration, {"interval": "nominal interval", "scope": "rows", "coverage": "coverage",
+                                        "detail": "detail"}), ""]
     reproduce = (run.provenance or {}).get("reproduce")
     if reproduce:
         lines += ["## Reproduce", "", "```", str(reproduce).replace("```", "'''"), "```", ""]

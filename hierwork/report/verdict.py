@@ -1,7 +1,8 @@
 """The verdict: what the diagnostics gate decided, in words.
 
 Reads ``diagnostics.json`` (docs/contracts.md) and states, for each failed
-check, the value, the limit, by how much it missed, and on which parameter.
+check, the value, the limit, by how much it missed, and on which parameter
+(reader-facing names, :mod:`hierwork.names`, also for older run folders).
 Shared by the HTML report, ``summary.md`` and ``hierwork compare``.
 """
 from __future__ import annotations
@@ -11,6 +12,7 @@ from dataclasses import dataclass
 from hierwork.formatting import number as fmt
 from hierwork.formatting import number_against
 from hierwork.inference.checks import BY_NAME
+from hierwork.names import readable
 
 __all__ = ["CheckLine", "Verdict", "verdict"]
 
@@ -102,7 +104,7 @@ def verdict(diagnostics: dict | None) -> Verdict:
                   value=c.get("value"), threshold=c.get("threshold"),
                   comparison=str(c.get("comparison") or (BY_NAME[c["name"]].comparison
                                                           if c.get("name") in BY_NAME else "<=")),
-                  parameter=c.get("worst_parameter"), passed=bool(c.get("passed")))
+                  parameter=readable(c.get("worst_parameter")), passed=bool(c.get("passed")))
         for c in diagnostics.get("checks", []))
     status = "passed" if diagnostics.get("passed") else "failed"
     return Verdict(status, checks, tuple(str(a) for a in diagnostics.get("advice", [])))

@@ -37,6 +37,17 @@ class View:
         scale = scale_of(run.estimands, run.family, str(outcome.get("column", "outcome")), outcome.get("exposure"))
         return cls(run, run.group_estimates, scale, run.estimands or {})
 
+    def outcome_key(self, key: str, default: str) -> str:
+        """A key of the spec's ``outcome`` section (``column``, ``trials``, ``exposure``) for labels."""
+        outcome = self.run.spec.get("outcome")
+        value = outcome.get(key) if isinstance(outcome, dict) else None
+        return str(value) if value else default
+
+    @property
+    def outcome_column(self) -> str:
+        """The outcome's column name in the data (for axis labels)."""
+        return self.outcome_key("column", "outcome")
+
     @property
     def ready(self) -> bool:
         """Whether the group table has the outcome-scale columns (runs of older versions do not)."""
@@ -44,12 +55,15 @@ class View:
 
     @property
     def link(self) -> tuple[str, str]:
-        """The family's link and the name of its scale (``("logit", "log-odds")``)."""
+        """The family's link and the name of its scale (``("logit", "log-odds")``; ``"log link"`` when a
+        family with a non-identity link names no scale of its own)."""
         from hierwork.plan.families import REGISTRY, get_family
 
         if self.run.family not in REGISTRY:
             return "identity", "outcome units"
         family = get_family(self.run.family)
+        if family.link != "identity" and family.link_scale == "outcome units":
+            return family.link, f"{family.link} link"
         return family.link, family.link_scale
 
     @property

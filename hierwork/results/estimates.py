@@ -19,6 +19,7 @@ import pandas as pd
 
 from hierwork.inference.convergence import diagnose
 from hierwork.plan.plan import FactorPlan, ModelPlan
+from hierwork.names import parameter_name
 from hierwork.results.outcome import factor_values, family_params, population_outcome_draws
 from hierwork.results.pooling import pooling_weights
 from hierwork.results.rankings import CONTRAST_COLUMNS, bounds, contrast_rows, rank_draws, rank_summary, standing
@@ -142,26 +143,27 @@ def contrasts(idata, plan: ModelPlan, interval: float) -> pd.DataFrame:
 
 
 def parameter_draws(idata, plan: ModelPlan) -> dict:
-    """Population-level and variance parameters as named draws (chain, draw)."""
+    """Population-level and variance parameters as draws (chain, draw), by reader-facing name (:mod:`hierwork.names`)."""
     post = idata.posterior
     out = {}
     for k, term in enumerate(plan.terms):
-        out[term] = post["b"].values[..., k]
+        out[parameter_name("b", {"term": term})] = post["b"].values[..., k]
     for name in plan.family.parameters(plan.outcome):
-        out[name] = post[name].values
+        out[parameter_name(name, {})] = post[name].values
     for f in plan.factors:
+        terms = list(f.varying)
         sd = post[f"{f.name}__sd"].values
-        for t, term in enumerate(f.varying):
-            out[f"{f.name}.sd" if t == 0 else f"{f.name}.{term}.sd"] = sd[..., t]
+        for t, term in enumerate(terms):
+            out[parameter_name(f"{f.name}__sd", {"term": term}, terms)] = sd[..., t]
         if f"{f.name}__corr" in post:
             corr = post[f"{f.name}__corr"].values
-            for a in range(len(f.varying)):
-                for c in range(a + 1, len(f.varying)):
-                    out[f"{f.name}.corr[{f.varying[a]},{f.varying[c]}]"] = corr[..., a, c]
+            for a in range(len(terms)):
+                for c in range(a + 1, len(terms)):
+                    out[parameter_name(f"{f.name}__corr", {"a": terms[a], "c": terms[c]})] = corr[..., a, c]
         for r, col in enumerate(f.predictors):
-            out[f"{f.name}.{col}"] = post[f"{f.name}__gamma"].values[..., r]
+            out[parameter_name(f"{f.name}__gamma", {"predictor": col})] = post[f"{f.name}__gamma"].values[..., r]
         if f.spread == "varying":
-            out[f"{f.name}.spread.sd"] = post[f"{f.name}__spread_sd"].values
+            out[parameter_name(f"{f.name}__spread_sd", {})] = post[f"{f.name}__spread_sd"].values
     return out
 
 

@@ -133,13 +133,24 @@ def _pointwise(idata, plan: ModelPlan):
         {"y": (("chain", "draw", "row"), ll.reshape(draws.shape + (plan.n,)))}))
 
 
-def _loo_record(result) -> dict:
+#: Rows with Pareto k above PARETO_K_BAD listed by name in loo.json (highest k first).
+MAX_HIGH_K_ROWS = 100
+
+
+def _loo_record(result, plan: ModelPlan | None = None) -> dict:
+    """elpd, SE, p_loo and Pareto k counts; with ``plan`` (row-level LOO) also the rows with k > 0.7."""
     k = np.asarray(result.pareto_k)
-    return {"elpd_loo": float(result.elpd_loo), "se": float(result.se), "p_loo": float(result.p_loo),
-            "pareto_k_above_0.7": int((k > PARETO_K_BAD).sum()),
-            "pareto_k_threshold_arviz": float(result.good_k),
-            "pareto_k_above_arviz_threshold": int((k > result.good_k).sum()),
-            "pareto_k_max": float(k.max()), "n": int(k.size)}
+    record = {"elpd_loo": float(result.elpd_loo), "se": float(result.se), "p_loo": float(result.p_loo),
+              "pareto_k_above_0.7": int((k > PARETO_K_BAD).sum()),
+              "pareto_k_threshold_arviz": float(result.good_k),
+              "pareto_k_above_arviz_threshold": int((k > result.good_k).sum()),
+              "pareto_k_max": float(k.max()), "n": int(k.size)}
+    if plan is not None and k.size == plan.n:
+        high = [int(i) for i in np.argsort(-k, kind="stable") if k[i] > PARETO_K_BAD][:MAX_HIGH_K_ROWS]
+        record["pareto_k_high_rows"] = [
+            {"row": i, "pareto_k": float(k[i]), "outcome": float(plan.y[i]),
+             "groups": {f.name: str(f.levels[f.index[i]]) for f in plan.factors}} for i in high]
+    return record
 
 
 def _loo(idata, var_name: str = "y"):
@@ -207,7 +218,8 @@ def pooling_comparison(idata, plan: ModelPlan, spec, seed: int) -> dict:
         fitted["no_pooling"] = _pointwise(_fit_baseline(np_plan, spec, np_seed, centre=False), np_plan)
         report["baseline_draws"] = min(spec.sampling["draws"], BASELINE_MAX_DRAWS)
     results = {name: _loo(data) for name, data in fitted.items()}
-    report["models"] = {name: _loo_record(r) for name, r in results.items()}
+    report["models"] = {name: _loo_record(r, plan if name == "partial_pooling" else None)
+                        for name, r in results.items()}
     files = {}
     if len(results) > 1:
         with warnings.catch_warnings():

@@ -200,8 +200,11 @@ def augment(idata, plan, seed: int, interval: float) -> dict:
 
 
 def constant_data(plan) -> xr.Dataset:
-    """Training facts ``hierwork predict`` needs beyond plan.json: group-level predictor values per group."""
+    """Training facts beyond plan.json: group-level predictor values per group (for ``hierwork predict``)
+    and the trials per row of a binomial outcome (the report's predictive check is on proportions)."""
     data = {}
+    if plan.trials is not None and np.ndim(plan.trials):
+        data["trials"] = xr.DataArray(np.asarray(plan.trials, dtype=float), dims=("row",))
     for f in plan.factors:
         if f.predictors:
             data[f"{f.name}__W"] = xr.DataArray(f.W, dims=(f.name, f"{f.name}__predictor"),
