@@ -4,6 +4,7 @@ import re
 import sqlite3
 import subprocess
 import sys
+from types import SimpleNamespace
 
 import pytest
 
@@ -116,13 +117,41 @@ def test_divergences_walk_the_policy_in_order():
     assert next_remedy(DEFAULT_POLICY, fourth.cursor, 5, FUNNEL, SETTINGS) is None  # max_attempts reached
 
 
-def test_low_ess_skips_steps_that_do_not_address_it():
+def test_low_ess_asks_for_more_draws_first():
+    # Only ESS failed: more draws first (ESS grows with the draws; Vehtari et al. 2021, section 4), and
+    # again while only ESS keeps failing; the steps before it stay available for other failures.
     remedy = next_remedy(DEFAULT_POLICY, 0, 1, LOW_ESS, SETTINGS)
+    assert remedy.overrides == {"sampling.draws": 2000} and remedy.cursor == 0
+    again = next_remedy(DEFAULT_POLICY, remedy.cursor, 2, LOW_ESS, {**SETTINGS, **remedy.overrides})
+    assert again.overrides == {"sampling.draws": 4000}
+    assert next_remedy(DEFAULT_POLICY, 0, 5, LOW_ESS, SETTINGS) is None  # max_attempts reached
+
+
+def test_low_ess_with_r_hat_walks_the_policy_skipping_what_does_not_address_it():
+    mixing = {"checks": [check("r_hat", 1.03, 1.01, "<=", False, "b[intercept]"), *LOW_ESS["checks"][1:]]}
+    remedy = next_remedy(DEFAULT_POLICY, 0, 1, mixing, SETTINGS)
     # no divergences: target_accept skipped; worst parameter 'b[...]' names no factor
     assert remedy.overrides == {"sampling.warmup": 2000} and remedy.cursor == 4
-    last = next_remedy(DEFAULT_POLICY, remedy.cursor, 2, LOW_ESS, SETTINGS)
+    last = next_remedy(DEFAULT_POLICY, remedy.cursor, 2, mixing, SETTINGS)
     assert last.overrides == {"sampling.draws": 2000}
-    assert next_remedy(DEFAULT_POLICY, last.cursor, 3, LOW_ESS, SETTINGS) is None  # steps used up
+    assert next_remedy(DEFAULT_POLICY, last.cursor, 3, mixing, SETTINGS) is None  # steps used up
+
+
+def test_collapsed_runs_list_no_form_so_the_parameterisation_step_skips(tmp_path):
+    # On the collapsed path the effects are integrated out: switching the form cannot change the result.
+    from hierwork.batch.runner import attempt_settings
+
+    job = SimpleNamespace(spec={"groups": {"plot": {"column": "plot"}}})
+    plan = {"path": "collapsed", "factors": [{"name": "plot", "parameterisation": "centred"}]}
+    (tmp_path / "plan.json").write_text(json.dumps(plan))
+    settings = attempt_settings(job, {}, tmp_path)
+    assert not any(k.startswith("groups.") for k in settings)
+    funnel = {"checks": [check("divergences", 3, 0, "<=", False, "plot.sd")]}
+    policy = parse_policy({"steps": ["parameterisation", {"warmup_factor": 2}]})
+    assert next_remedy(policy, 0, 1, funnel, settings).overrides == {"sampling.warmup": 2000}
+    (tmp_path / "plan.json").write_text(json.dumps({**plan, "path": "plain"}))
+    assert next_remedy(policy, 0, 1, funnel, attempt_settings(job, {}, tmp_path)).overrides == {
+        "groups.plot.parameterisation": "non_centred"}
 
 
 def test_divergences_without_a_named_factor_switch_every_centred_factor():

@@ -12,6 +12,8 @@ from hierwork.declare.remedies import Policy, Step
 from hierwork.inference.checks import check_def
 
 FORMS = {"centred": "non_centred", "non_centred": "centred"}
+#: The checks that more draws alone address.
+ESS_CHECKS = ("ess_bulk", "ess_tail")
 
 
 @dataclass(frozen=True)
@@ -72,7 +74,13 @@ def next_remedy(policy: Policy, cursor: int, attempts_done: int, diagnostics: Ma
     current : mapping
         The failed attempt's settings as dotted paths: ``sampling.target_accept``,
         ``sampling.warmup``, ``sampling.draws`` and
-        ``groups.<factor>.parameterisation`` (resolved: centred or non_centred).
+        ``groups.<factor>.parameterisation`` (resolved: centred or non_centred;
+        absent for factors whose effects were integrated out).
+
+    Steps are tried in the policy's order from ``cursor``, skipping those that
+    cannot address the failure or change the model; when only ESS checks
+    failed, a ``draws_factor`` step is tried first (and may be taken again
+    while only ESS keeps failing, up to ``max_attempts``).
 
     Returns
     -------
@@ -84,12 +92,17 @@ def next_remedy(policy: Policy, cursor: int, attempts_done: int, diagnostics: Ma
     kinds = _kinds(failing)
     forms = {k.split(".")[1]: v for k, v in current.items()
              if k.startswith("groups.") and k.endswith(".parameterisation")}
-    for index in range(cursor, len(policy.steps)):
+    order = list(range(cursor, len(policy.steps)))
+    only_ess = bool(failing) and all(str(c.get("name")) in ESS_CHECKS for c in failing)
+    if only_ess:  # more draws is what raises ESS: try it before the other steps
+        order.sort(key=lambda i: policy.steps[i].kind != "draws_factor")
+    for index in order:
         step = policy.steps[index]
         changes = _apply(step, kinds, failing, forms, current)
         if changes:
             reason = f"{step.text()} (failed: {', '.join(c['name'] for c in failing) or 'gate'})"
-            return Remedy(index + 1, changes, reason)
+            # A draws step taken out of turn leaves the steps before it for later failures.
+            return Remedy(cursor if index > cursor and only_ess else index + 1, changes, reason)
     return None
 
 

@@ -208,7 +208,9 @@ def attempt_settings(job: JobDef, overrides: dict, run_dir: Path) -> dict:
 
     Sampling values come from the overrides, else the spec, else the spec
     table's defaults; each factor's form is read from the run's ``plan.json``
-    (which resolves ``auto``), else from the spec.
+    (which resolves ``auto``), else from the spec. On the collapsed path every
+    factor's effects are integrated out, so no form is listed: switching it
+    could not change the result, and the ``parameterisation`` remedy skips.
     """
     from hierwork.declare.keys import SPEC_KEYS
 
@@ -220,20 +222,27 @@ def attempt_settings(job: JobDef, overrides: dict, run_dir: Path) -> dict:
         values[dotted] = overrides.get(dotted, sampling.get(key, defaults[key].default))
     forms = {name: overrides.get(f"groups.{name}.parameterisation", (group or {}).get("parameterisation"))
              for name, group in (job.spec.get("groups") or {}).items()}
-    forms.update(_planned_forms(Path(run_dir) / "plan.json"))
+    path, planned = _planned_forms(Path(run_dir) / "plan.json")
+    forms.update(planned)
+    if path == "collapsed":
+        forms = {}
     values.update({f"groups.{name}.parameterisation": form for name, form in forms.items()})
     return values
 
 
-def _planned_forms(path: Path) -> dict:
+def _planned_forms(path: Path) -> tuple:
+    """The model path a run took and each factor's resolved form, from its ``plan.json`` (None, {} if unreadable)."""
     try:
         plan = json.loads(path.read_text(encoding="utf-8"))
     except (OSError, ValueError):
-        return {}
-    factors = plan.get("factors", []) if isinstance(plan, dict) else []
+        return None, {}
+    if not isinstance(plan, dict):
+        return None, {}
+    factors = plan.get("factors", [])
     if isinstance(factors, dict):
         factors = [{"name": k, **v} for k, v in factors.items()]
-    return {f["name"]: f["parameterisation"] for f in factors if "name" in f and "parameterisation" in f}
+    return plan.get("path"), {f["name"]: f["parameterisation"] for f in factors
+                              if "name" in f and "parameterisation" in f}
 
 
 def adopt(batch_dir: Path, queue: Queue, attempt: dict) -> str | None:

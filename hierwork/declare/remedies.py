@@ -14,7 +14,9 @@ A step that does not address the failure at hand is skipped:
     Switch the failing factor between centred and non-centred forms. The
     factor is the one named by a failing check's ``worst_parameter``
     (``farm__sd``, ``farm__effect[...]``); with no name but divergences, a
-    low E-BFMI or saturated trees, every centred factor is switched. Centred forms suit groups
+    low E-BFMI or saturated trees, every centred factor is switched. Skipped on the
+    collapsed path, where the effects are integrated out and the form changes
+    nothing. Centred forms suit groups
     with much data, non-centred ones groups with little (Papaspiliopoulos,
     Roberts and Skold 2007; Betancourt and Girolami 2015, the funnel).
 ``warmup_factor: K``
@@ -22,6 +24,7 @@ A step that does not address the failure at hand is skipped:
 ``draws_factor: K``
     Multiply the draws by K. Used only when an R-hat or ESS check failed:
     more draws raise ESS and sharpen R-hat (Vehtari et al. 2021, section 4).
+    When only the ESS checks failed it is tried before the other steps.
 
 Default policy (common practice, in the order the steps are listed)::
 
