@@ -88,28 +88,42 @@ def _data(rng, family: str) -> pd.DataFrame:
     eta = effect + 0.05 * x
     if family in ("normal", "student_t"):
         frame["y"] = (20 + 3 * eta + rng.normal(0, 1, depot.size)).round(3)
-    elif family == "binomial":
+    elif family in ("binomial", "beta_binomial"):
         frame["y"] = rng.binomial(frame["size"], 1 / (1 + np.exp(-(eta - 1))))
+    elif family in ("gamma", "lognormal"):
+        frame["y"] = (np.exp(eta + 2) * rng.gamma(4.0, 0.25, depot.size)).round(3)
     elif family == "bernoulli":
         frame["y"] = rng.binomial(1, 1 / (1 + np.exp(-eta)))
     else:
-        frame["y"] = rng.poisson(frame["hours"] * np.exp(eta - 1.5))
+        frame["y"] = rng.poisson(frame["hours"] * np.exp(eta - 1.5)) * (rng.random(depot.size) > 0.2)
     return frame
 
 
 _CASES = {
-    # name: (family, outcome extras, groups, extra sampling keys). Every exact path (collapsed, reduced,
-    # plain), every form of group effect (standardised, as sampled, Cholesky, group-level predictor) and
-    # every family parameter (residual_sd, nu, dispersion) once; bernoulli and poisson add no kind of
-    # parameter beyond binomial and negative_binomial, so they are left out to keep the tier's MCMC small.
+    # name: (family, outcome extras, groups, extra sampling keys). Every family, every exact path
+    # (collapsed, reduced, plain), every form of group effect (standardised, as sampled, Cholesky,
+    # group-level predictor, varying residual spread) and every family parameter once.
     "normal-collapsed": ("normal", "", "depot: {column: depot, within: region, varying: [intercept, load]}\n"
                                        "  region: {column: region}", ""),
     "normal-reduced": ("normal", "", "depot: {column: depot}\n  shift: {column: shift}", ""),
+    "normal-spread": ("normal", "", "depot: {column: depot, spread: varying}", ""),
     "binomial-centred": ("binomial", ", trials: size",
                          "depot: {column: depot, predictors: [capacity], parameterisation: centred}", ""),
+    "bernoulli": ("bernoulli", "", "depot: {column: depot}", ""),
+    "beta_binomial": ("beta_binomial", ", trials: size", "depot: {column: depot}", ""),
     "student_t": ("student_t", "", "depot: {column: depot, parameterisation: non_centred}", ""),
+    "poisson": ("poisson", ", exposure: hours", "depot: {column: depot}", ""),
     "negative_binomial": ("negative_binomial", ", exposure: hours", "depot: {column: depot}", ""),
+    "zero_inflated_poisson": ("zero_inflated_poisson", ", exposure: hours", "depot: {column: depot}", ""),
+    "gamma": ("gamma", "", "depot: {column: depot}", ""),
+    "lognormal": ("lognormal", "", "depot: {column: depot}", ""),
 }
+
+
+def test_every_family_has_a_case():
+    from hierwork.plan.families import REGISTRY
+
+    assert set(REGISTRY) <= {family for family, *_ in _CASES.values()}
 
 
 @pytest.fixture(scope="module")
@@ -128,7 +142,7 @@ def fitted(tmp_path_factory):
         data = root / f"{case}.csv"
         _data(rng, family).to_csv(data, index=False)
         spec = root / f"{case}.yaml"
-        spec.write_text(f"format: hierwork/1\nname: {case}\ntitle: Depot {case}\ndata: {data}\n"
+        spec.write_text(f"format: hierwork/1\nname: {case}\ntitle: Depot {case.replace('_', ' ')}\ndata: {data}\n"
                         f"outcome: {{column: y, family: {family}{extra}}}\npredictors: [load]\n"
                         f"groups:\n  {groups}\nsampling:\n  chains: 2\n  warmup: 60\n  draws: 60\n"
                         f"  seed: 5\n{sampling}")
@@ -175,5 +189,5 @@ def test_no_internal_name_reaches_a_reader(fitted):
     for index in ("index.html", "index.md"):
         text = (batch / index).read_text()
         assert not INTERNAL.search(text), index
-        assert all(f"Depot {case}" in text for case in runs)
+        assert all(f"Depot {case.replace('_', ' ')}" in text for case in runs)
     assert "headline estimate" in (batch / "index.md").read_text()
