@@ -142,11 +142,13 @@ class Ordinal(Family):
     # ------------------------------------------------------------------ model and predictions
 
     def likelihood(self, eta, y, rows, params):
+        """PyMC's ordered logistic (levels 0..K-1) shifted to positions 1..K, so that prior and posterior
+        predictive draws are on the data's positions."""
         import pymc as pm
         import pytensor.tensor as pt
 
         cuts = pt.zeros(1) if "cutpoints" not in params else pt.concatenate([pt.zeros(1), params["cutpoints"]])
-        pm.OrderedLogistic("y", eta=eta, cutpoints=cuts, observed=y - 1, compute_p=False)
+        pm.CustomDist("y", eta, cuts, dist=_positions, observed=y)
 
     def mean(self, eta, params):
         """Expected score: ``1 + sum_k P(y > k)``."""
@@ -203,6 +205,12 @@ class Levels:
 
     def var(self):
         return (self.p * self.k ** 2).sum(axis=-1) - self.mean() ** 2
+
+
+def _positions(eta, cuts, size):
+    import pymc as pm
+
+    return pm.OrderedLogistic.dist(eta=eta, cutpoints=cuts, size=size) + 1
 
 
 def _full(params) -> np.ndarray:
