@@ -84,3 +84,29 @@ def test_probabilities_and_expected_score_closed_form():
     rows = OutcomeRows(np.array([2.0, 4.0]), levels=("1", "2", "3", "4"))
     np.testing.assert_allclose(ORDINAL.log_density(rows.y, eta, rows, params),
                                np.log([expected[0, 1], expected[1, 3]]), rtol=1e-12)
+
+
+def test_baselines_are_statsmodels_ordered_model_fits(tmp_path):
+    # Complete pooling: one cumulative logit for all rows; no pooling: one intercept per group. Both are
+    # statsmodels' OrderedModel (distr='logit') maximum-likelihood fits, whose thresholds t_k give ours as
+    # intercept -t_1 (our first cut-point is 0) plus the group's coefficient.
+    from statsmodels.miscmodels.ordinal_model import OrderedModel
+
+    from hierwork.results.baselines import baselines
+
+    rng = np.random.default_rng(7)
+    depot = np.repeat(["north", "south", "east"], [40, 60, 80])
+    eta = np.select([depot == "south", depot == "east"], [0.5, -0.4], 0.0) + 0.3
+    ratings = 1 + (rng.random(depot.size)[:, None] < expit(eta[:, None] - [0.0, 1.1, 2.3])).sum(axis=1)
+    spec = _spec(tmp_path, list(ratings), {"levels": [1, 2, 3, 4]})
+    frame = pd.read_csv(tmp_path / "d.csv").assign(depot=depot)
+    frame.to_csv(tmp_path / "d.csv", index=False)
+    table = baselines(hierwork.check(spec).plan).set_index("group")
+
+    pooled = OrderedModel(frame["rating"], np.zeros((len(frame), 0)), distr="logit").fit(method="newton", disp=0)
+    np.testing.assert_allclose(table["complete_pooling"], -pooled.params.iloc[0], atol=1e-5)
+    dummies = pd.get_dummies(frame["depot"], dtype=float)[["north", "south"]]   # 'east' the reference
+    separate = OrderedModel(frame["rating"], dummies, distr="logit").fit(method="newton", disp=0)
+    east = -separate.params.iloc[2]
+    np.testing.assert_allclose(table.loc[["east", "north", "south"], "no_pooling"],
+                               [east, east + separate.params["north"], east + separate.params["south"]], atol=1e-4)
