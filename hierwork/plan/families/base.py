@@ -79,6 +79,10 @@ class Family:
     exact_normal : bool
         Normal likelihood with identity link: the exact collapsed and reduced
         paths apply.
+    ordered : bool
+        Outcomes are ordered levels (``outcome.levels``): the data reader
+        replaces them by their positions 1..K and passes the levels in
+        :attr:`OutcomeRows.levels`.
     """
 
     name: ClassVar[str] = ""
@@ -89,7 +93,6 @@ class Family:
     required: ClassVar[tuple] = ()
     discrete: ClassVar[bool] = False
     exact_normal: ClassVar[bool] = False
-    #: Outcomes are ordered levels (``outcome.levels``), stored as positions 1..K.
     ordered: ClassVar[bool] = False
     #: One line for ``check`` and the README: what the family models.
     summary: ClassVar[str] = ""
