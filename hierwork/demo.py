@@ -1,4 +1,4 @@
-"""Invented demo data: six scenarios with known true group effects.
+"""Invented demo data: seven scenarios with known true group effects.
 
 The data are simulated from multilevel models whose group effects come from a
 normal distribution with a moderate standard deviation, and whose groups are of
@@ -32,6 +32,10 @@ Scenarios (all invented; see ``docs/demo.md``):
     (2 to 40 visits), with the minutes surveyed as the exposure and the wind as
     a predictor; on a share of visits the species is absent from the plot
     altogether, so there are more zeros than a Poisson count allows.
+``depot_ratings``
+    Passengers' ratings (1 to 5) of bus journeys run from 30 bus depots (3 to
+    150 rated journeys), with the minutes the bus was late as a predictor: an
+    ordered outcome (cumulative logit).
 
 Besides each data file, ``truth/<scenario>_groups.csv`` records the true
 group-level values used to simulate it, so that fits can be compared with the
@@ -57,7 +61,8 @@ __all__ = ["DEFAULT_SEED", "DEMO_DATASETS", "TRUE_PARAMETERS", "make_demo_data"]
 
 DEFAULT_SEED = 20261202
 
-DEMO_DATASETS = ("wheat", "line_defects", "depot_delays", "depot_repairs", "plot_birds", "ward_infections")
+DEMO_DATASETS = ("wheat", "line_defects", "depot_delays", "depot_repairs", "plot_birds", "ward_infections",
+                 "depot_ratings")
 
 #: The population-level values the data are simulated from (data units).
 TRUE_PARAMETERS = {
@@ -105,6 +110,12 @@ TRUE_PARAMETERS = {
         "ward.sd": 0.35,
         "concentration": 60.0,       # beta-binomial: month-to-month spread of a ward's proportion
     },
+    "depot_ratings": {
+        "intercept": 2.2,            # log odds of a rating above 1 for a journey on time
+        "minutes_late": -0.08,       # per minute late
+        "depot.sd": 0.4,
+        "cutpoints": (1.3, 2.6, 3.9),  # boundaries 2|3, 3|4, 4|5 (the boundary 1|2 is 0)
+    },
 }
 
 _REGIONS = ("north", "east", "south", "west", "central")
@@ -129,6 +140,9 @@ _PLOT_VISITS = (2, 2, 2, 3, 3, 3, 4, 4, 5, 5, 6, 6, 7, 8, 8, 9, 10, 10, 11, 12,
 _WARD_MONTHS = (2, 2, 3, 3, 4, 4, 5, 6, 6, 7, 8, 9, 10, 11, 12, 12, 13, 14, 15, 16,
                 18, 20, 21, 22, 24, 24, 26, 28, 30, 30, 32, 33, 34, 35, 36, 36)
 _WARD_TYPES = ("general", "surgical", "intensive")
+# Rated journeys per bus depot.
+_DEPOT_RATINGS = (3, 3, 4, 4, 5, 6, 7, 8, 10, 12, 14, 16, 18, 20, 24, 28, 32, 36, 40, 45,
+                  50, 60, 70, 80, 90, 100, 110, 125, 140, 150)
 _DEPOT_WEEKS = (2, 2, 3, 3, 3, 4, 4, 5, 5, 6, 6, 7, 8, 8, 9, 10, 10, 12, 12, 14,
                 15, 16, 18, 20, 22, 24, 26, 26, 30, 32, 35, 38, 40, 42, 45, 48, 50, 52, 52, 52)
 
@@ -320,8 +334,26 @@ def _ward_infections(rng: np.random.Generator) -> tuple[pd.DataFrame, pd.DataFra
     return data, truth
 
 
+def _depot_ratings(rng: np.random.Generator) -> tuple[pd.DataFrame, pd.DataFrame]:
+    p = TRUE_PARAMETERS["depot_ratings"]
+    depots, journeys, offsets, idx, journey = _unequal_groups(rng, _DEPOT_RATINGS, "B", p["depot.sd"])
+    depot_log_odds = p["intercept"] + offsets
+    truth = pd.DataFrame({"depot": depots, "n_journeys": journeys, "true_log_odds": depot_log_odds.round(5)})
+    late = np.minimum(np.round(rng.exponential(5.0, idx.size)), 40)
+    eta = depot_log_odds[idx] + p["minutes_late"] * late
+    above = 1.0 / (1.0 + np.exp(-(eta[:, None] - np.r_[0.0, p["cutpoints"]])))  # P(rating > k), k = 1..4
+    rating = 1 + (rng.random(idx.size)[:, None] < above).sum(axis=1)
+    data = pd.DataFrame({"depot": depots[idx], "journey": journey, "minutes_late": late.astype(int),
+                         "rating": rating})
+    return data, truth
+
+
 _SCENARIOS = {"wheat": _wheat, "line_defects": _line_defects, "depot_delays": _depot_delays,
-              "depot_repairs": _depot_repairs, "plot_birds": _plot_birds, "ward_infections": _ward_infections}
+              "depot_repairs": _depot_repairs, "plot_birds": _plot_birds, "ward_infections": _ward_infections,
+              "depot_ratings": _depot_ratings}
+#: The wheat population's stream follows the first six scenarios'; later scenarios take the streams after it,
+#: so that adding a scenario leaves every existing file byte-identical.
+_POPULATION_STREAM = 6
 
 
 def _write_csv_atomically(frame: pd.DataFrame, path: Path) -> None:
@@ -360,6 +392,7 @@ def make_demo_data(out_dir, seed: int = DEFAULT_SEED) -> dict[str, Path]:
     (out / "truth").mkdir(parents=True, exist_ok=True)
     # One more stream than scenarios, for the wheat population (spawning more keeps the first ones).
     streams = np.random.SeedSequence(seed).spawn(len(DEMO_DATASETS) + 1)
+    population_stream = streams.pop(_POPULATION_STREAM)
     written = {}
     for name, stream in zip(DEMO_DATASETS, streams):
         data, truth = _SCENARIOS[name](np.random.default_rng(stream))
@@ -367,7 +400,7 @@ def make_demo_data(out_dir, seed: int = DEFAULT_SEED) -> dict[str, Path]:
         _write_csv_atomically(data, out / f"{name}.csv")
         written[name] = out / f"{name}.csv"
         if name == "wheat":
-            population, true_means = _wheat_population(np.random.default_rng(streams[-1]), truth)
+            population, true_means = _wheat_population(np.random.default_rng(population_stream), truth)
             _write_csv_atomically(true_means, out / "truth" / "wheat_population.csv")
             _write_csv_atomically(population, out / "wheat_population.csv")
     return written

@@ -19,6 +19,7 @@ A family added to the registry is checked here with no other edit:
 """
 from __future__ import annotations
 
+import dataclasses
 from types import SimpleNamespace
 
 import numpy as np
@@ -32,7 +33,6 @@ import yaml
 
 import hierwork
 from hierwork.plan.families import FAMILY_NAMES, get_family
-from hierwork.plan.families.base import OutcomeRows
 from hierwork.results.baselines import fit_glm
 
 FAMILIES = [get_family(name) for name in FAMILY_NAMES]
@@ -45,9 +45,16 @@ def _case(family, n=400, seed=0):
     rows = family.example_rows(rng, n)
     x = rng.normal(size=n)
     eta = 0.5 + 0.4 * x
-    params = {k: np.float64(v) for k, v in family.example_params.items()}
+    params = _params(family)
     y = family.simulate(rng, eta, rows, params)
-    return OutcomeRows(y, rows.trials, rows.exposure, rows.known_sd), x, eta, params
+    return dataclasses.replace(rows, y=y), x, eta, params
+
+
+def _params(family, draws=None):
+    """The family's example parameters; with ``draws``, repeated as ``(draws, 1)`` to broadcast over rows
+    (a vector parameter's elements on a last axis: ``(draws, 1, k)``)."""
+    values = {k: np.asarray(v, dtype=float) for k, v in family.example_params.items()}
+    return values if draws is None else {k: np.broadcast_to(v, (draws, 1) + v.shape) for k, v in values.items()}
 
 
 def _logpdf(dist, y):
@@ -71,8 +78,7 @@ def test_simulator_moments_match_reference(family):
     rows, _, eta, params = _case(family, n=3)
     rng = np.random.default_rng(1)
     draws = 40_000
-    sims = family.simulate(rng, np.broadcast_to(eta, (draws, 3)), rows, {k: np.full((draws, 1), v)
-                                                                          for k, v in params.items()})
+    sims = family.simulate(rng, np.broadcast_to(eta, (draws, 3)), rows, _params(family, draws))
     ref = family.reference(eta, rows, params)
     mean, var = np.asarray(ref.mean()), np.asarray(ref.var())
     # Five standard errors of the sample mean and (roughly, via the fourth moment bound) of the variance.
@@ -96,8 +102,8 @@ def test_information_is_the_variance_of_the_score(family):
     params = {k: 1.7 * v for k, v in params.items()}  # away from 1, so that a missing scale shows
     rng = np.random.default_rng(2)
     draws, h = 100_000, 1e-5
-    sims = family.simulate(rng, np.broadcast_to(eta, (draws, 4)), rows, {k: np.full((draws, 1), v)
-                                                                          for k, v in params.items()})
+    sims = family.simulate(rng, np.broadcast_to(eta, (draws, 4)), rows,
+                           {k: np.broadcast_to(v, (draws, 1) + v.shape) for k, v in params.items()})
     score = (family.log_density(sims, eta + h, rows, params) - family.log_density(sims, eta - h, rows, params)) / (2 * h)
     squares = score ** 2
     expected = np.broadcast_to(family.information(eta, rows, params), eta.shape)
@@ -135,6 +141,16 @@ def _scipy_beta_binomial(rows, X):
     return optimize.minimize(nll, start, method="BFGS", options={"gtol": 1e-9}).x[:-1]
 
 
+def _sm_ordinal(rows, X):
+    """statsmodels' OrderedModel (distr='logit') has no intercept and free thresholds ``t_k``, ``P(y > k) =
+    expit(x b - t_k)``; ours fixes the first cut-point at 0 and keeps the intercept: ``b0 = -t_1``."""
+    from statsmodels.miscmodels.ordinal_model import OrderedModel
+
+    res = OrderedModel(rows.y, X[:, 1:], distr="logit").fit(method="newton", maxiter=200, disp=0)
+    slopes = res.params[: X.shape[1] - 1]
+    return np.r_[-res.params[X.shape[1] - 1], slopes]
+
+
 #: Family -> the same maximum-likelihood fit in statsmodels (a general-purpose reference library), or for a
 #: model statsmodels lacks, scipy.optimize on the scipy.stats distribution.
 STATSMODELS = {
@@ -147,6 +163,7 @@ STATSMODELS = {
     "lognormal": lambda rows, X: sm.OLS(np.log(rows.y), X).fit().params,   # lognormal ML = least squares on log y
     "beta_binomial": _scipy_beta_binomial,
     "zero_inflated_poisson": _sm_zip,
+    "ordinal": _sm_ordinal,
 }
 
 
@@ -169,7 +186,7 @@ def test_small_fit_recovers_intercept_and_group_sd(family, tmp_path):
     site = np.repeat(np.arange(groups), per_group)
     rows = family.example_rows(rng, n)
     eta = intercept + rng.normal(0, group_sd, groups)[site]
-    params = {k: np.float64(v) for k, v in family.example_params.items()}
+    params = _params(family)
     frame = pd.DataFrame({"site": [f"s{j:02d}" for j in site], "y": family.simulate(rng, eta, rows, params)})
     outcome = {"column": "y", "family": family.name}
     for key in ("trials", "exposure"):

@@ -90,6 +90,8 @@ def _data(rng, family: str) -> pd.DataFrame:
         frame["y"] = (20 + 3 * eta + rng.normal(0, 1, depot.size)).round(3)
     elif family in ("binomial", "beta_binomial"):
         frame["y"] = rng.binomial(frame["size"], 1 / (1 + np.exp(-(eta - 1))))
+    elif family == "ordinal":
+        frame["y"] = 1 + np.searchsorted([-0.5, 0.5, 1.5], eta + rng.logistic(0, 1, depot.size))
     elif family in ("gamma", "lognormal"):
         frame["y"] = (np.exp(eta + 2) * rng.gamma(4.0, 0.25, depot.size)).round(3)
     elif family == "bernoulli":
@@ -117,6 +119,7 @@ _CASES = {
     "zero_inflated_poisson": ("zero_inflated_poisson", ", exposure: hours", "depot: {column: depot}", ""),
     "gamma": ("gamma", "", "depot: {column: depot}", ""),
     "lognormal": ("lognormal", "", "depot: {column: depot}", ""),
+    "ordinal": ("ordinal", "", "depot: {column: depot}", ""),
 }
 
 

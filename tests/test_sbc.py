@@ -66,6 +66,9 @@ SCALE_PRIORS = {**LINK_PRIORS, "residual_sd": {"half_normal": {"sigma": 1}}}
 EXTRA = {"nu": {"gamma": {"alpha": 2, "beta": 0.1}}, "dispersion": {"gamma": {"alpha": 2, "beta": 0.1}},
          "concentration": {"gamma": {"alpha": 2, "beta": 0.1}}, "zero_inflation": {"beta": {"alpha": 2, "beta": 4}},
          "cv": {"gamma": {"alpha": 4, "beta": 8}}, "log_sd": {"half_normal": {"sigma": 1}}}
+#: Ordinal placeholder outcomes are the scores 1..4; the priors of the gaps between its cut-points.
+ORDINAL_GAPS = {"cutpoints.gap[2|3]": {"lognormal": {"mu": 0, "sigma": 0.5}},
+                "cutpoints.gap[3|4]": {"lognormal": {"mu": 0, "sigma": 0.5}}}
 #: Families whose outcome must be positive (the placeholder outcome is 1 or 2 for them, else 0 or 1).
 POSITIVE = ("gamma", "lognormal")
 #: Families with a number of trials per row.
@@ -92,6 +95,9 @@ CASES = {
                       COMMON + [("concentration", None)]),
     "zero_inflated_poisson": ("non_centred", {**COUNT_PRIORS, "zero_inflation": EXTRA["zero_inflation"]},
                               COMMON + [("zero_inflation", None)]),
+    # scores 1..4: the first cut-point is 0, the other two (a vector parameter) are sums of positive gaps
+    "ordinal": ("non_centred", {**LINK_PRIORS, **ORDINAL_GAPS},
+                COMMON + [("cutpoints", "2|3"), ("cutpoints", "3|4")]),
 }
 
 
@@ -104,7 +110,8 @@ def _plan(folder, family, parameterisation, priors, varying=("intercept",)):
     n = GROUPS * ROWS
     frame = pd.DataFrame({"g": np.repeat([f"g{j}" for j in range(GROUPS)], ROWS),
                           "x": np.round(rng.normal(size=n), 3), "trials": 10,
-                          "y": rng.integers(0, 2, size=n) + (family in POSITIVE)})
+                          "y": rng.integers(1, 5, size=n) if family == "ordinal"
+                          else rng.integers(0, 2, size=n) + (family in POSITIVE)})
     frame.to_csv(folder / "data.csv", index=False)
     outcome = {"column": "y", "family": family, **({"trials": "trials"} if family in TRIALS else {})}
     doc = {"format": "hierwork/1", "name": f"sbc_{family}", "data": "data.csv", "outcome": outcome,

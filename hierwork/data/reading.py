@@ -61,6 +61,7 @@ class Dataset:
     labels: dict = field(default_factory=dict)
     categorical: dict = field(default_factory=dict)
     missing: dict = field(default_factory=dict)
+    outcome_levels: tuple | None = None
 
     @property
     def n(self) -> int:
@@ -69,7 +70,8 @@ class Dataset:
     def outcome_rows(self, outcome) -> OutcomeRows:
         """The outcome and its family's columns as arrays."""
         get = lambda column: None if column is None else self.frame[column].to_numpy(dtype=float)  # noqa: E731
-        return OutcomeRows(get(outcome.column), *(get(getattr(outcome, k)) for k in OUTCOME_COLUMNS))
+        return OutcomeRows(get(outcome.column), *(get(getattr(outcome, k)) for k in OUTCOME_COLUMNS),
+                           levels=self.outcome_levels)
 
 
 def read_table(path: Path, text_columns=()) -> pd.DataFrame:
@@ -158,14 +160,17 @@ def load_dataset(spec) -> Dataset:
                             hint=choices_hint(column, list(table.columns)))
     frame = table[list(used)].copy()
     frame, ref, missing = _handle_missing(spec, frame, used, ref)
-    _check_outcome(spec, frame, ref)
+    levels = None
+    if get_family(spec.outcome.family).ordered:
+        frame, levels = _ordered_outcome(spec, frame, ref)
+    _check_outcome(spec, frame, ref, levels)
     categorical = _check_predictors(spec, frame, ref)
     labels = group_labels(frame, spec.factors)
     _check_groups(spec, labels, path)
     _check_group_predictors(spec, frame, labels, path)
     frame = frame.reset_index(drop=True)
     return Dataset(frame=frame, path=path, sha256=hashlib.sha256(raw_bytes).hexdigest(), ref=ref,
-                   labels=labels, categorical=categorical, missing=missing)
+                   labels=labels, categorical=categorical, missing=missing, outcome_levels=levels)
 
 
 def _handle_missing(spec, frame, used: dict, ref: RowRef):
@@ -206,7 +211,50 @@ def used_columns(spec) -> dict:
     return used
 
 
-def _check_outcome(spec, frame, ref: RowRef) -> None:
+def _level_text(value) -> str:
+    """A value of an ordered outcome as a level label (whole numbers without a decimal point)."""
+    if isinstance(value, (int, float, np.number)) and not isinstance(value, bool) and float(value).is_integer():
+        return str(int(value))
+    return str(value).strip()
+
+
+def _ordered_outcome(spec, frame, ref: RowRef):
+    """Replace an ordered outcome's labels or scores by their positions 1..K in ``outcome.levels``.
+
+    Without ``outcome.levels`` the outcome must be whole-number scores; the levels
+    are then every whole number from the smallest to the largest observed.
+    """
+    column, given = spec.outcome.column, spec.outcome.levels
+    values = frame[column]
+    if given is None:
+        numeric(frame, column, "outcome", ref)
+        scores = values.to_numpy(dtype=float)
+        bad = scores != np.round(scores)
+        if bad.any():
+            raise DataError(f"outcome column {column!r} has scores that are not whole numbers in {ref.text(bad)}",
+                            where=ref.where, hint="list the levels in order under outcome.levels, "
+                                                  "or use whole-number scores")
+        low, high = int(scores.min()), int(scores.max())
+        if low == high:
+            raise DataError(f"outcome column {column!r} holds only the score {low}", where=ref.where,
+                            hint="an ordered outcome needs two or more levels: list them under outcome.levels")
+        levels = tuple(str(k) for k in range(low, high + 1))
+    else:
+        levels = tuple(given)
+    position = {label: k + 1 for k, label in enumerate(levels)}
+    labels = values.map(_level_text)
+    bad = ~labels.isin(levels).to_numpy()
+    if bad.any():
+        unknown = sorted(set(labels[bad]))[:5]
+        raise DataError(f"outcome column {column!r} has values not in outcome.levels "
+                        f"({', '.join(map(repr, unknown))}) in {ref.text(bad)}", where=ref.where,
+                        hint=f"the levels are {', '.join(levels)}; add the missing ones in their place or fix the data")
+    frame = frame.copy()
+    frame[column] = labels.map(position).astype(float)
+    return frame, levels
+
+
+def _check_outcome(spec, frame, ref: RowRef, levels=None) -> None:
     out = spec.outcome
     columns = {"outcome": out.column}
     numeric(frame, out.column, "outcome", ref)
@@ -220,7 +268,7 @@ def _check_outcome(spec, frame, ref: RowRef) -> None:
         raise DataError(f"{role} column {columns[role]!r} {what} in {ref.text(mask)}", where=ref.where, hint=hint)
 
     get = lambda key: None if key not in columns else frame[columns[key]].to_numpy(dtype=float)  # noqa: E731
-    rows = OutcomeRows(get("outcome"), *(get(k) for k in OUTCOME_COLUMNS))
+    rows = OutcomeRows(get("outcome"), *(get(k) for k in OUTCOME_COLUMNS), levels=levels)
     family = get_family(out.family)
     family.check_data(rows, fail)
     if family.discrete:

@@ -93,6 +93,9 @@ SPEC_KEYS = {
         "trials": Key("str", "binomial / beta_binomial: column with the number of trials.", None),
         "exposure": Key("str", "poisson / negative_binomial / zero_inflated_poisson: column of exposures (log offset).", None),
         "known_sd": Key("str", "normal: column of known per-row standard errors (meta-analysis).", None),
+        "levels": Key("list", "ordinal: the outcome's levels from lowest to highest (labels or scores); "
+                      "default: the whole numbers from the smallest to the largest observed score.", None,
+                      item=Key("str", "a level")),
     }),
     "missing": Key("choice", "Rows with a missing value in a column the model uses: 'error' stops with "
                    "a message naming them; 'drop' removes them (check, plan.json and the report "

@@ -29,6 +29,7 @@ class Outcome:
     trials: str | None = None
     exposure: str | None = None
     known_sd: str | None = None
+    levels: tuple | None = None
 
 
 @dataclass(frozen=True)
@@ -396,6 +397,13 @@ def _check_outcome(outcome: Outcome, doc: YamlDocument) -> None:
             users = [name for name in FAMILY_NAMES if key in get_family(name).columns]
             raise SpecError(f"'{key}' does not apply to family {family.name!r}", where=doc.where(f"outcome.{key}"),
                             hint=f"it is for {' / '.join(users)}; remove it or change the family")
+    if outcome.levels is not None:
+        if family.name != "ordinal":
+            raise SpecError(f"'levels' does not apply to family {family.name!r}", where=doc.where("outcome.levels"),
+                            hint="it gives the order of an ordinal outcome; remove it or use family ordinal")
+        if len(outcome.levels) < 2 or len(set(outcome.levels)) != len(outcome.levels):
+            raise SpecError(f"outcome.levels must list two or more different levels, got {list(outcome.levels)}",
+                            where=doc.where("outcome.levels"), hint="write e.g. levels: [low, mid, high]")
     for key in family.required:
         if getattr(outcome, key) is None:
             raise SpecError(f"family {family.name!r} needs {key!r}: the column with the {COLUMN_ROLES[key]}",

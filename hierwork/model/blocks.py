@@ -39,6 +39,8 @@ def coords_of(plan: ModelPlan) -> dict:
             coords[f"{f.name}__predictor"] = list(f.predictors)
         if len(f.varying) > 1:
             coords[f"{f.name}__term_"] = list(f.varying)
+    for dim, labels in plan.family.vector_parameters(plan.outcome).values():
+        coords[dim] = list(labels)
     return coords
 
 
@@ -84,8 +86,17 @@ def population_block(plan: ModelPlan, centre: bool):
 
 
 def family_extras(plan: ModelPlan) -> dict:
-    """The family's own parameters (residual SD, degrees of freedom, dispersion, ...) as PyMC variables."""
-    return {name: prior_rv(name, [plan.priors[name]]) for name in plan.family.parameters(plan.outcome)}
+    """The family's own parameters (residual SD, degrees of freedom, dispersion, cut-points...) as PyMC variables."""
+    family, vectors = plan.family, plan.family.vector_parameters(plan.outcome)
+    out = {}
+    for name in family.parameters(plan.outcome):
+        if name in vectors:
+            dim, _ = vectors[name]
+            priors = [plan.priors[p] for p in family.prior_names(name, plan.outcome)]
+            out[name] = family.own_variable(name, priors, dim)
+        else:
+            out[name] = prior_rv(name, [plan.priors[name]])
+    return out
 
 
 def factor_scales(f: FactorPlan, plan: ModelPlan):

@@ -42,7 +42,9 @@ rate, log of the mean, mean of the logarithm). With ``M = 5`` spreads and
   ``exponential`` with median the median number of trials ``n`` (a typical
   row's binomial variance about doubled, ``1 + (n - 1) / (n + 1)``; 98% between
   ``n / 70`` and ``6.6 n``); zero-inflated Poisson ``zero_inflation``
-  ``beta(1, 1)``.
+  ``beta(1, 1)``; ordinal: each gap between consecutive cut-points (``cutpoints.gap[a|b]``, the
+  first cut-point fixed at 0) ``lognormal`` with median the gap between the logits of the observed
+  cumulative shares (half a row added to each level) and log-scale SD 1 (99% within a factor of 13).
 """
 from __future__ import annotations
 
@@ -93,6 +95,7 @@ class Distribution:
             "exponential": lambda: stats.expon(0, 1.0 / p["lam"]),
             "gamma": lambda: stats.gamma(p["alpha"], 0, 1.0 / p["beta"]),
             "beta": lambda: stats.beta(p["alpha"], p["beta"]),
+            "lognormal": lambda: stats.lognorm(p["sigma"], 0, np.exp(p["mu"])),
         }[self.name]()
         out = frozen.logpdf(x)
         return out + np.log(2.0) if self.name == "half_student_t" else out
@@ -109,6 +112,7 @@ DISTRIBUTIONS = {d.name: d for d in (
     Distribution("exponential", "Exponential", ("lam",), ("lam",), ("positive",)),
     Distribution("gamma", "Gamma", ("alpha", "beta"), ("alpha", "beta"), ("positive",)),
     Distribution("beta", "Beta", ("alpha", "beta"), ("alpha", "beta"), ("probability",)),
+    Distribution("lognormal", "LogNormal", ("mu", "sigma"), ("sigma",), ("positive",)),
     Distribution("lkj", "LKJCorr", ("eta",), ("eta",), ("correlation",)),
 )}
 

@@ -18,6 +18,7 @@ import numpy as np
 import pandas as pd
 
 from hierwork.inference.convergence import diagnose
+from hierwork.plan.families.base import element_names
 from hierwork.plan.plan import FactorPlan, ModelPlan
 from hierwork.names import parameter_name
 from hierwork.results.outcome import factor_values, family_params, population_outcome_draws
@@ -39,7 +40,8 @@ GROUP_COLUMNS = ("factor", "group", "term", "rows", "trials", "events", "exposur
 def group_sizes(plan: ModelPlan, f: FactorPlan) -> dict:
     """How much data each group has: ``rows``, and ``trials``, ``events``, ``exposure`` where they apply."""
     outcome = plan.outcome
-    sums = {"trials": outcome.trials, "events": outcome.y if plan.family.discrete else None,
+    counts = plan.family.discrete and not plan.family.ordered   # an ordered level is not a number of events
+    sums = {"trials": outcome.trials, "events": outcome.y if counts else None,
             "exposure": outcome.exposure}
     out = {"rows": f.sizes}
     for name, values in sums.items():
@@ -78,7 +80,7 @@ def group_estimates(idata, plan: ModelPlan, baseline: pd.DataFrame, interval: fl
     table["no_pooling_outcome"] = _baseline_outcome(idata, plan, table, "no_pooling")
     table["complete_pooling_outcome"] = _baseline_outcome(idata, plan, table, "complete_pooling")
     table = pd.concat([table, spread_rows(idata, plan, interval)], ignore_index=True)
-    return table[[c for c in GROUP_COLUMNS if c in table.columns]]
+    return table[[c for c in GROUP_COLUMNS if c in table.columns] + plan.family.level_columns(plan.outcome)]
 
 
 def _factor_columns(idata, plan: ModelPlan, f: FactorPlan, interval: float) -> list:
@@ -111,6 +113,10 @@ def _factor_columns(idata, plan: ModelPlan, f: FactorPlan, interval: float) -> l
                 "outcome_lower": np.quantile(outcome[:, :, t], lo, axis=0),
                 "outcome_upper": np.quantile(outcome[:, :, t], hi, axis=0),
                 **standing(link[:, :, t], outcome[:, :, t], population[:, t], plan.estimands, t == 0)})
+        if plan.family.level_columns(plan.outcome):   # intercept rows: each level's probability
+            params = {k: v.reshape((D, 1) + v.shape[3:]) for k, v in family_params(idata, plan, 1).items()}
+            shares = plan.family.level_probabilities(link[:, :, 0], params).mean(axis=0)
+            parts[0][-1].update(zip(plan.family.level_columns(plan.outcome), shares.T))
     return [{**{k: np.concatenate([p[k] for p in parts[t]]) for k in parts[t][0]},
              **rank_summary(kept[t], plan.estimands.rank_k, interval)} for t in range(q)]
 
@@ -122,7 +128,7 @@ def _baseline_outcome(idata, plan: ModelPlan, table: pd.DataFrame, column: str) 
     term from the group's own intercept row of the same baseline.
     """
     ref, family = plan.estimands, plan.family
-    params = {k: float(v.mean()) for k, v in family_params(idata, plan).items()}
+    params = {k: v.mean(axis=(0, 1)) for k, v in family_params(idata, plan).items()}
     level = table[table["term"] == "intercept"].set_index(["factor", "group"])[column]
     at = level.reindex(pd.MultiIndex.from_frame(table[["factor", "group"]])).to_numpy(dtype=float)
     value = table[column].to_numpy(dtype=float)
@@ -148,8 +154,13 @@ def parameter_draws(idata, plan: ModelPlan) -> dict:
     out = {}
     for k, term in enumerate(plan.terms):
         out[parameter_name("b", {"term": term})] = post["b"].values[..., k]
+    vectors = plan.family.vector_parameters(plan.outcome)
     for name in plan.family.parameters(plan.outcome):
-        out[parameter_name(name, {})] = post[name].values
+        if name in vectors:
+            for k, element in enumerate(element_names(name, vectors[name][1])):
+                out[element] = post[name].values[..., k]
+        else:
+            out[parameter_name(name, {})] = post[name].values
     for f in plan.factors:
         terms = list(f.varying)
         sd = post[f"{f.name}__sd"].values

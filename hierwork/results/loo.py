@@ -102,7 +102,7 @@ def no_pooling_plan(plan: ModelPlan) -> ModelPlan:
     priors.update(extra_priors)
     priors["intercept"] = plan.priors["intercept"]  # first column: the first group's intercept
     for name in plan.family.parameters(plan.outcome):
-        priors[name] = plan.priors[name]
+        priors.update({p: plan.priors[p] for p in plan.family.prior_names(name, plan.outcome)})
     X = np.column_stack(cols + extra_cols)
     return dataclasses.replace(plan, X=X, design=_design(tuple(terms + extra_terms)), factors=(), priors=priors)
 

@@ -62,8 +62,14 @@ def group_coefficient_draws(idata, plan: ModelPlan, f: FactorPlan, groups=None) 
 def family_params(idata, plan: ModelPlan, trailing: int = 0) -> dict:
     """The family's parameter draws (chain, draw) with ``trailing`` axes of length 1 to broadcast."""
     post = idata.posterior
-    return {name: post[name].values.reshape(post[name].shape + (1,) * trailing)
-            for name in plan.family.parameters(plan.outcome) if name in post}
+    out = {}
+    vectors = plan.family.vector_parameters(plan.outcome)
+    for name in plan.family.parameters(plan.outcome):
+        if name in post:
+            v = post[name].values
+            out[name] = v.reshape(v.shape[:2] + (1,) * trailing + v.shape[2:]) if name in vectors \
+                else v.reshape(v.shape + (1,) * trailing)
+    return out
 
 
 def _others(idata, plan: ModelPlan, skip) -> np.ndarray:

@@ -76,9 +76,13 @@ def log_prior(idata, plan: ModelPlan) -> np.ndarray:
     total = np.zeros(b.shape[0])
     for k, term in enumerate(plan.terms):
         total += plan.priors["intercept" if k == 0 else term].logpdf(b[:, k])
-    for name in plan.family.parameters(plan.outcome):
-        if name in post:
-            total += plan.priors[name].logpdf(_flat(post[name]))
+    family = plan.family
+    for name in family.parameters(plan.outcome):
+        variable = family.prior_variable(name)
+        if variable in post:
+            values = _flat(post[variable]).reshape(b.shape[0], -1)
+            for k, p in enumerate(family.prior_names(name, plan.outcome)):
+                total += plan.priors[p].logpdf(values[:, k])
     for f in plan.factors:
         sd = _flat(post[f"{f.name}__sd"]).reshape(b.shape[0], -1)
         for t, term in enumerate(f.varying):

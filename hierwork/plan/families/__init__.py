@@ -29,6 +29,7 @@ REGISTRY = {
     "lognormal": "hierwork.plan.families.lognormal:Lognormal",
     "beta_binomial": "hierwork.plan.families.beta_binomial:BetaBinomial",
     "zero_inflated_poisson": "hierwork.plan.families.zero_inflated_poisson:ZeroInflatedPoisson",
+    "ordinal": "hierwork.plan.families.ordinal:Ordinal",
 }
 
 FAMILY_NAMES = tuple(REGISTRY)

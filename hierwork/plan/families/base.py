@@ -20,26 +20,31 @@ import numpy as np
 class OutcomeRows:
     """The outcome and the family's per-row columns (NumPy arrays; None when not used).
 
-    ``y`` is None for rows to predict.
+    ``y`` is None for rows to predict. ``levels`` is not a column: the labels of
+    an ordered outcome in their order (``y`` holds positions 1..K), else None.
     """
 
     y: np.ndarray | None
     trials: np.ndarray | None = None
     exposure: np.ndarray | None = None
     known_sd: np.ndarray | None = None
+    levels: tuple | None = None
+
+    def _columns(self):
+        return [f.name for f in fields(self) if f.name != "levels"]
 
     @property
     def n(self) -> int:
-        for f in fields(self):
-            value = getattr(self, f.name)
+        for name in self._columns():
+            value = getattr(self, name)
             if value is not None:
                 return len(value)
         return 0
 
     def rows(self, sl) -> "OutcomeRows":
         """The same columns restricted to ``sl`` (a slice, mask or index array)."""
-        return OutcomeRows(*(None if getattr(self, f.name) is None else getattr(self, f.name)[sl]
-                             for f in fields(self)))
+        return OutcomeRows(*(None if getattr(self, name) is None else getattr(self, name)[sl]
+                             for name in self._columns()), levels=self.levels)
 
 
 #: Reference spread of the outcome on the logit and log scales (default priors): half a unit, that is
@@ -74,6 +79,10 @@ class Family:
     exact_normal : bool
         Normal likelihood with identity link: the exact collapsed and reduced
         paths apply.
+    ordered : bool
+        Outcomes are ordered levels (``outcome.levels``): the data reader
+        replaces them by their positions 1..K and passes the levels in
+        :attr:`OutcomeRows.levels`.
     """
 
     name: ClassVar[str] = ""
@@ -84,6 +93,7 @@ class Family:
     required: ClassVar[tuple] = ()
     discrete: ClassVar[bool] = False
     exact_normal: ClassVar[bool] = False
+    ordered: ClassVar[bool] = False
     #: One line for ``check`` and the README: what the family models.
     summary: ClassVar[str] = ""
 
@@ -101,6 +111,31 @@ class Family:
     def parameters(self, rows: OutcomeRows) -> tuple:
         """Names of the family's own parameters (priors, posterior variables), e.g. ``("residual_sd",)``."""
         return ()
+
+    def vector_parameters(self, rows: OutcomeRows) -> dict:
+        """Those of :meth:`parameters` that are vectors: name -> (dimension name, element labels).
+
+        A vector parameter's value in ``params`` has the elements on a last extra
+        axis (``(D, 1, k)`` beside ``eta`` of shape ``(D, m)``); its summary rows and
+        priors are named ``name[label]`` (:func:`element_names`).
+        """
+        return {}
+
+    def own_variable(self, name: str, priors: list, dims: str):
+        """The PyMC variable of vector parameter ``name`` (``priors``: those :meth:`prior_names` lists)."""
+        raise NotImplementedError
+
+    def prior_names(self, name: str, rows: OutcomeRows) -> list:
+        """The plan's priors of parameter ``name``: itself, or one per element of a vector parameter.
+
+        Each prior is of one sampled variable; ``name`` and the variable may differ
+        (:meth:`own_variable`), see :meth:`prior_variable`.
+        """
+        return [name]
+
+    def prior_variable(self, name: str) -> str:
+        """The posterior variable the priors of parameter ``name`` are the prior of (elements on its last axis)."""
+        return name
 
     def check_data(self, rows: OutcomeRows, fail) -> None:
         """Raise through ``fail(mask, what, hint)`` for outcome rows the family cannot take.
@@ -218,6 +253,14 @@ class Family:
         """
         return self.glm_working(rows, eta + self.offset(rows), {})[1]
 
+    def level_columns(self, rows: OutcomeRows) -> list:
+        """Extra group_estimates.csv columns of an ordered outcome, one per level (none by default)."""
+        return []
+
+    def level_probabilities(self, eta, params: dict):
+        """Each level's probability on a last axis, in :meth:`level_columns` order (ordered outcomes)."""
+        raise NotImplementedError
+
     def log_density(self, y, eta, rows: OutcomeRows, params: dict) -> np.ndarray:
         """Log density (or mass) of ``y`` given ``eta``, written from its formula."""
         raise NotImplementedError
@@ -232,6 +275,11 @@ class Family:
 
     def __repr__(self) -> str:
         return f"<family {self.name}>"
+
+
+def element_names(name: str, labels) -> list:
+    """Summary and prior names of a vector parameter's elements: ``name[label]``."""
+    return [f"{name}[{label}]" for label in labels]
 
 
 def sigma_of(rows: OutcomeRows, params: dict):
