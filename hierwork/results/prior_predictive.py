@@ -89,7 +89,10 @@ def prior_predictive(plan, seed: int, draws: int = 500) -> dict:
         eta = linear_predictor(draws_of(prior.prior, plan.factors, ()), rows_of(plan))
         if plan.family.link == "logit":
             p = special.expit(eta)
-            observed = float(np.sum(plan.y) / np.sum(np.broadcast_to(plan.family.trials(plan.outcome), plan.y.shape)))
+            trials = getattr(plan.family, "trials", None)
+            # ordinal (positions 1..K): the linear predictor is the log-odds of a level above the first
+            observed = (float(np.sum(plan.y) / np.sum(np.broadcast_to(trials(plan.outcome), plan.y.shape)))
+                        if trials is not None else float(np.mean(plan.y > 1)))
             low, high = min(0.01, observed / 5), max(0.99, 1 - (1 - observed) / 5)
             extreme = float(np.mean((p < low) | (p > high)))
             out["share_probability_extreme"] = extreme
