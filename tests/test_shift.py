@@ -4,7 +4,10 @@ With crossed factors the per-row model samples ``b'_t = b_t + sum_f mean_j u_{f,
 (model/paths.py::shifted_columns). The map ``(b', u) -> (b, u)`` is a shear:
 linear, unit Jacobian, so the model's log density at a point must equal the
 unshifted model's at the point's image (closed form below, written out from the
-definition, not from the model's code). Data: machines (Milliken and Johnson
+definition, not from the model's code). A centred factor's offsets are then
+sampled as orthonormal (Helmert) contrasts and a non-centred mean,
+``u = Q' [C; sd w]`` with ``Q`` orthogonal: the density gains ``log sd``
+(the Jacobian of that map). Data: machines (Milliken and Johnson
 1992), cbpp (Lesnoff et al. 2004) and oats (Yates 1935), tests/data/SOURCES.md.
 """
 from __future__ import annotations
@@ -54,11 +57,18 @@ def _unshifted_image(plan, effects_of, point):
     slopes_shifted = np.asarray(point.get("b_shifted_slope", np.zeros(0)))
     slopes = slopes_shifted - offset[1:]
     intercept = point["b_shifted_intercept"] - slopes_shifted @ m - offset[0]  # b'_0 - o_0, b'_0 at x = 0
-    image = {k: v for k, v in point.items() if not k.startswith("b_shifted")}
+    image = {k: v for k, v in point.items() if not k.startswith("b_shifted") and "__contrast" not in k
+             and "__mean_z" not in k}
     image["b_centred_intercept"] = intercept + slopes @ m
     if len(slopes):
         image["b_slope"] = slopes
-    return image, np.concatenate([[intercept], slopes])
+    log_jacobian = 0.0
+    for f in plan.factors:  # a centred factor: contrasts and a non-centred mean instead of the offsets
+        if f"{f.name}__contrast" in point:
+            assert f.varying == ("intercept",)  # offsets at centred x = in data units
+            image[f"{f.name}__u"] = effects[f"{f.name}__effect"]
+            log_jacobian += float(point[f"{f.name}__sd_log__"][0])  # u = Q'[C; sd w], Q orthogonal
+    return image, np.concatenate([[intercept], slopes]), log_jacobian
 
 
 CASES = {
@@ -90,10 +100,10 @@ def test_shifted_model_has_the_unshifted_log_density_at_the_sheared_point(tmp_pa
     start = shifted.initial_point()
     for _ in range(3):
         point = {k: v + rng.normal(0, 0.5, np.shape(v)) for k, v in start.items()}
-        image, b = _unshifted_image(plan, effects_of, point)
+        image, b, log_jacobian = _unshifted_image(plan, effects_of, point)
         np.testing.assert_allclose(b_shifted(point)["b"], b, rtol=1e-10, atol=1e-10)
         np.testing.assert_allclose(b_plain(image)["b"], b, rtol=1e-10, atol=1e-10)
-        assert logp_shifted(point) == pytest.approx(logp_plain(image), rel=1e-10, abs=1e-8)
+        assert logp_shifted(point) == pytest.approx(logp_plain(image) + log_jacobian, rel=1e-10, abs=1e-8)
         # the check can fail: the same numbers taken unsheared give another density
         naive = {**image, "b_centred_intercept": point["b_shifted_intercept"]}
         assert abs(logp_plain(naive) - logp_plain(image)) > 1e-6

@@ -100,7 +100,9 @@ def build_model(plan: ModelPlan, centre: bool = True, reduced: bool = False, shi
                 parts.append((f, pt.dot(coef, to_data), None))
                 anchored.update(f.varying_cols)
             else:
-                if form == "centred":
+                if form == "centred" and shifted:
+                    effect_c = _contrasts_and_mean(f.name, sd, chol_c, shape)
+                elif form == "centred":
                     effect_c = _centred(f"{f.name}__u", pt.zeros(shape), sd, chol_c, dims, np.zeros(shape))
                 else:
                     effect_c = pt.dot(pm.Normal(f"{f.name}__z", 0.0, 1.0, dims=dims), chol_c.T)
@@ -130,6 +132,27 @@ def build_model(plan: ModelPlan, centre: bool = True, reduced: bool = False, shi
                 family, outcome = plan.family.aggregate(plan.outcome, cells.cell, cells.n_cells)
                 family.likelihood(eta, pm.Data("y_data", outcome.y), outcome, extras)
     return model
+
+
+def _contrasts_and_mean(name, sd, chol, shape):
+    """Offsets ``u_j ~ N(0, S)`` of a centred factor whose mean effect the data do not identify.
+
+    With the coefficients shifted, the data inform each group's contrast with
+    the others but not the factor's mean effect, which only its prior holds:
+    sampled centred, all groups drift together along it. So the orthonormal
+    contrasts ``C = H u`` (Helmert, rows iid ``N(0, S)``) are sampled centred
+    and the mean ``u_bar = L w / sqrt(J)``, ``w ~ N(0, I)``, non-centred; then
+    ``u = H' C + 1 u_bar'``, exactly the same distribution.
+    """
+    from scipy.linalg import helmert
+
+    J, q = shape
+    model = pm.modelcontext(None)
+    model.add_coord(f"{name}__contrasts", [f"contrast {k + 1}" for k in range(J - 1)])
+    C = _centred(f"{name}__contrast", pt.zeros((J - 1, q)), sd, chol, (f"{name}__contrasts", f"{name}__term"),
+                 np.zeros((J - 1, q)))
+    w = pm.Normal(f"{name}__mean_z", 0.0, 1.0, dims=f"{name}__term")
+    return pt.dot(helmert(J).T, C) + pt.dot(chol, w)[None, :] / np.sqrt(J)
 
 
 def _centred(name, mean, sd, chol, dims, start):
