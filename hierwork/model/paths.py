@@ -104,7 +104,9 @@ def shift_decision(plan, path: str) -> tuple | None:
     terms = ", ".join(plan.terms[c] for c in cols)
     return ("population terms", f"sampled shifted by the mean group effects ({terms})",
             f"{f} and {g} are crossed: the data identify each coefficient plus its factors' mean effects, "
-            "not each, so that sum is sampled and the coefficient derived (exact, unit Jacobian)")
+            "not each, so that sum is sampled and the coefficient derived (exact, unit Jacobian)"
+            + ("; a centred factor's offsets as contrasts (centred) plus a non-centred mean"
+               if any(f.parameterisation == "centred" for f in plan.factors) else ""))
 
 
 def resolve_path(spec, plan) -> tuple[str, str]:
