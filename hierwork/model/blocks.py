@@ -61,28 +61,58 @@ def prior_rv(name: str, priors: list, dims=None):
     return dist(name, **params, dims=dims)
 
 
-def population_block(plan: ModelPlan, centre: bool):
+def predictor_means(plan: ModelPlan, centre: bool) -> np.ndarray:
+    """Means of the population predictors the sampler centres at (zeros without centring)."""
+    return plan.X[:, 1:].mean(axis=0) if centre else np.zeros(len(plan.terms) - 1)
+
+
+def population_block(plan: ModelPlan, centre: bool, offset=None):
     """Population coefficients ``b`` (data units) and the family's extra parameters.
 
     Returns ``(b, means)``: with ``centre`` the sampled intercept is the linear
     predictor at the predictors' means, ``a``, and ``b[intercept] = a - sum_k b_k m_k``;
     ``means`` are the ``m_k`` (0 without centring).
+
+    ``offset`` (p,) tensor, data units: the sum over factors of each term's mean
+    group effect, ``o_t = sum_f mean_j u_{f,j,t}``. Given, the sampled
+    coefficients are the shifted ones ``b'_t = b_t + o_t`` (``b_shifted_intercept``
+    at the predictors' means, ``b_shifted_slope``), which the data identify on
+    crossed designs, and ``b = b' - o`` carries the spec's priors as potentials:
+    a shear with unit Jacobian, so the posterior of ``b`` and the effects is
+    unchanged (see :func:`hierwork.model.paths.shifted_columns`).
     """
     terms = plan.terms
-    means = plan.X[:, 1:].mean(axis=0) if centre else np.zeros(len(terms) - 1)
-    slopes = prior_rv("b_slope", [plan.priors[t] for t in terms[1:]], dims="slope") if len(terms) > 1 \
-        else pt.zeros(0)
+    means = predictor_means(plan, centre)
+    slope_priors = [plan.priors[t] for t in terms[1:]]
+    if offset is not None and len(terms) > 1:
+        shifted = pm.Flat("b_shifted_slope", dims="slope", initval=np.array([_start(p) for p in slope_priors]))
+        slopes = shifted - offset[1:]
+        dist, params = _params("b_slope", slope_priors, True)
+        pm.Potential("slope_prior", pm.logp(dist.dist(**params), slopes).sum())
+    elif len(terms) > 1:
+        slopes = prior_rv("b_slope", slope_priors, dims="slope")
+    else:
+        slopes = pt.zeros(0)
     if centre:
         dist, params = _params("intercept", [plan.priors["intercept"]], False)
-        start = params.get("mu", 0.0) + float(np.dot(means, [plan.priors[t].params.get("mu", 0.0)
-                                                              for t in terms[1:]]))
-        a = pm.Flat("b_centred_intercept", initval=start)
-        intercept = a - pt.dot(slopes, means)
+        start = _start(plan.priors["intercept"]) + float(np.dot(means, [_start(p) for p in slope_priors]))
+        if offset is None:
+            intercept = pm.Flat("b_centred_intercept", initval=start) - pt.dot(slopes, means)
+        else:  # the centred groups' mean intercept is o_0 + sum_k o_k m_k
+            a = pm.Flat("b_shifted_intercept", initval=start) - offset[0] - pt.dot(offset[1:], means)
+            intercept = a - pt.dot(slopes, means)
         pm.Potential("intercept_prior", pm.logp(dist.dist(**params), intercept))
     else:
         intercept = prior_rv("b_intercept", [plan.priors["intercept"]])
     b = pm.Deterministic("b", pt.concatenate([pt.stack([intercept]), slopes]), dims="term")
     return b, means
+
+
+def _start(prior) -> float:
+    """A starting value inside a coefficient prior's support: its location (or a uniform's midpoint)."""
+    p = prior.params
+    return float(p["mu"] if "mu" in p else p["alpha"] if prior.dist == "cauchy"
+                 else (p["lower"] + p["upper"]) / 2 if "lower" in p else 0.0)
 
 
 def family_extras(plan: ModelPlan) -> dict:

@@ -63,6 +63,52 @@ def best_path(plan) -> tuple[str, str]:
                        "statistics, group effects sampled")
 
 
+def crossed_pair(plan) -> tuple | None:
+    """Two factors neither of which has each group inside one group of the other, or None.
+
+    Judged from the data (a factor declared ``within`` another, or whose labels
+    happen to sit inside the other's groups, is nested, not crossed).
+    """
+    for i, f in enumerate(plan.factors):
+        for g in plan.factors[i + 1:]:
+            if not _nested(f, g) and not _nested(g, f):
+                return f.name, g.name
+    return None
+
+
+def _nested(f, g) -> bool:
+    """Whether every group of ``f`` lies within one group of ``g``."""
+    pairs = np.unique(np.column_stack([f.index, g.index]), axis=0)
+    return len(pairs) == f.n_groups
+
+
+def shifted_columns(plan) -> tuple:
+    """Columns of ``X`` whose coefficient the per-row model samples shifted by the mean group effects.
+
+    The rule: when two of the sampled factors are crossed (:func:`crossed_pair`),
+    every population term that varies by some factor (the intercept always) is
+    sampled as ``b_t + sum_f mean_j u_{f,j,t}``, the quantity the data identify
+    (:func:`hierwork.model.rowwise.build_model`); otherwise none (one factor has
+    hierarchical centring, nested factors are left as they are).
+    """
+    if crossed_pair(plan) is None:
+        return ()
+    return tuple(sorted({c for f in plan.factors for c in f.varying_cols}))
+
+
+def shift_decision(plan, path: str) -> tuple | None:
+    """``(what, choice, reason)`` of the shift for ``check``, or None when it does not apply."""
+    if path == "collapsed" or not (cols := shifted_columns(plan)):
+        return None
+    f, g = crossed_pair(plan)
+    terms = ", ".join(plan.terms[c] for c in cols)
+    return ("population terms", f"sampled shifted by the mean group effects ({terms})",
+            f"{f} and {g} are crossed: the data identify each coefficient plus its factors' mean effects, "
+            "not each, so that sum is sampled and the coefficient derived (exact, unit Jacobian)"
+            + ("; a centred factor's offsets as contrasts (centred) plus a non-centred mean"
+               if any(f.parameterisation == "centred" for f in plan.factors) else ""))
+
+
 def resolve_path(spec, plan) -> tuple[str, str]:
     """The spec's ``sampling.path``, or the fastest exact one that applies."""
     best, reason = best_path(plan)

@@ -13,6 +13,13 @@ covariance; see :mod:`hierwork.model.blocks` for the centring of predictors):
   the population values would tie its coefficients to the other factors'
   effects, a ridge the sampler crawls along).
 
+With crossed factors the data identify a population coefficient plus the
+mean of its factors' group effects (on the link scale), not each: the sampler
+would crawl along that ridge. The coefficients are then sampled shifted,
+``b'_t = b_t + sum_f mean_j u_{f,j,t}``, and ``b`` derived with its prior
+(:func:`~hierwork.model.blocks.population_block`): a shear with unit
+Jacobian, the same posterior (rule: :func:`~hierwork.model.paths.shifted_columns`).
+
 ``build_model(plan, centre=False)`` gives the same model without centring
 and with every factor non-centred, which prior predictive simulation uses
 (every variable then has a proper generative prior). On the reduced path
@@ -31,13 +38,14 @@ import pytensor.tensor as pt
 
 from hierwork.model import marginal
 from hierwork.model.blocks import (coords_of, factor_scales, family_extras, group_predictor_term,
-                                   population_block, shift_matrix)
+                                   population_block, predictor_means, shift_matrix)
 from hierwork.model.cells import cell_index, cell_stats, row_cells
+from hierwork.model.paths import shifted_columns
 from hierwork.model.spread import row_residual_sd
 from hierwork.plan.plan import ModelPlan
 
 
-def build_model(plan: ModelPlan, centre: bool = True, reduced: bool = False) -> pm.Model:
+def build_model(plan: ModelPlan, centre: bool = True, reduced: bool = False, shift: bool = True) -> pm.Model:
     """Build the PyMC model of a plan with every group effect sampled.
 
     Parameters
@@ -52,13 +60,20 @@ def build_model(plan: ModelPlan, centre: bool = True, reduced: bool = False) -> 
         per gradient): from sufficient statistics for normal outcomes, from
         summed rows of identical predictors and groups for counts and
         proportions (:meth:`~hierwork.plan.families.base.Family.aggregate`).
+    shift : bool
+        With ``centre``, sample the coefficients of
+        :func:`~hierwork.model.paths.shifted_columns` shifted by the mean group
+        effects (default; the same posterior). ``False`` samples them as they
+        are (the reference the shift is tested against).
 
     Returns
     -------
     pymc.Model
     """
     with pm.Model(coords=coords_of(plan)) as model:
-        b, means = population_block(plan, centre)
+        shifted = shifted_columns(plan) if centre and shift else ()
+        means = predictor_means(plan, centre)
+        b = None if shifted else population_block(plan, centre)[0]  # shifted: once the effects exist
         extras = family_extras(plan)
         if "residual_sd" in extras:
             extras["residual_sd"] = row_residual_sd(plan, extras["residual_sd"])
@@ -85,12 +100,19 @@ def build_model(plan: ModelPlan, centre: bool = True, reduced: bool = False) -> 
                 parts.append((f, pt.dot(coef, to_data), None))
                 anchored.update(f.varying_cols)
             else:
-                if form == "centred":
+                if form == "centred" and shifted:
+                    effect_c = _contrasts_and_mean(f.name, sd, chol_c, shape)
+                elif form == "centred":
                     effect_c = _centred(f"{f.name}__u", pt.zeros(shape), sd, chol_c, dims, np.zeros(shape))
                 else:
                     effect_c = pt.dot(pm.Normal(f"{f.name}__z", 0.0, 1.0, dims=dims), chol_c.T)
                 parts.append((f, pt.dot(effect_c, to_data), shift))
             pm.Deterministic(f"{f.name}__effect", pt.dot(effect_c, to_data), dims=dims)
+        if shifted:
+            offset = pt.zeros(plan.X.shape[1])
+            for f, values, _ in parts:
+                offset = pt.inc_subtensor(offset[list(f.varying_cols)], values.mean(axis=0))
+            b, _ = population_block(plan, centre, offset)
         free = [k for k in range(plan.X.shape[1]) if k not in anchored]
         if reduced and plan.family.exact_normal:
             reduced_normal_likelihood(plan, b, free, parts, extras.get("residual_sd"))
@@ -110,6 +132,27 @@ def build_model(plan: ModelPlan, centre: bool = True, reduced: bool = False) -> 
                 family, outcome = plan.family.aggregate(plan.outcome, cells.cell, cells.n_cells)
                 family.likelihood(eta, pm.Data("y_data", outcome.y), outcome, extras)
     return model
+
+
+def _contrasts_and_mean(name, sd, chol, shape):
+    """Offsets ``u_j ~ N(0, S)`` of a centred factor whose mean effect the data do not identify.
+
+    With the coefficients shifted, the data inform each group's contrast with
+    the others but not the factor's mean effect, which only its prior holds:
+    sampled centred, all groups drift together along it. So the orthonormal
+    contrasts ``C = H u`` (Helmert, rows iid ``N(0, S)``) are sampled centred
+    and the mean ``u_bar = L w / sqrt(J)``, ``w ~ N(0, I)``, non-centred; then
+    ``u = H' C + 1 u_bar'``, exactly the same distribution.
+    """
+    from scipy.linalg import helmert
+
+    J, q = shape
+    model = pm.modelcontext(None)
+    model.add_coord(f"{name}__contrasts", [f"contrast {k + 1}" for k in range(J - 1)])
+    C = _centred(f"{name}__contrast", pt.zeros((J - 1, q)), sd, chol, (f"{name}__contrasts", f"{name}__term"),
+                 np.zeros((J - 1, q)))
+    w = pm.Normal(f"{name}__mean_z", 0.0, 1.0, dims=f"{name}__term")
+    return pt.dot(helmert(J).T, C) + pt.dot(chol, w)[None, :] / np.sqrt(J)
 
 
 def _centred(name, mean, sd, chol, dims, start):

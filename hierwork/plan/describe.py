@@ -42,7 +42,24 @@ def plan_as_dict(plan, decisions: dict | None = None) -> dict:
         "notes": list(plan.notes),
         "estimands": plan.estimands.to_dict(),
         **(decisions or {}),
+        **_shift_entry(plan, (decisions or {}).get("path")),
     }
+
+
+def _shift(plan, path):
+    """The decision row of the shifted population coefficients, or None (:mod:`hierwork.model.paths`)."""
+    from hierwork.model.paths import shift_decision
+
+    return shift_decision(plan, path) if path else None
+
+
+def _shift_entry(plan, path) -> dict:
+    """plan.json's ``shifted_terms`` (sampled plus their factors' mean effects) and ``shift_reason``."""
+    from hierwork.model.paths import shifted_columns
+
+    row = _shift(plan, path)
+    return {} if row is None else {"shifted_terms": [plan.terms[c] for c in shifted_columns(plan)],
+                                   "shift_reason": row[2]}
 
 
 def missing_text(missing: dict) -> str:
@@ -101,6 +118,7 @@ def describe(plan, decisions: list) -> str:
         lines.append(f"  {'*' if prior.default else ' '} {key:<{width}}  {prior.text()}")
     lines += ["", "decisions"]
     rows = list(decisions)
+    shift = _shift(plan, next((choice for what, choice, _ in decisions if what == "path"), None))
     collapsed = any(what == "path" and choice == "collapsed" for what, choice, _ in decisions)
     for f in plan.factors:
         form = f.parameterisation.replace("_", "-")
@@ -109,6 +127,7 @@ def describe(plan, decisions: list) -> str:
                          f"exact on the collapsed path (if sampled: {form}, {f.reason})"))
         else:
             rows.append((f"{f.name} effects", f"sampled {form}", f.reason))
+    rows += [shift] if shift else []
     width = max(len(what) for what, _, _ in rows)
     lines += [f"  {what:<{width}}  {choice}: {reason}" for what, choice, reason in rows]
     lines += [f"note: {note}" for note in plan.notes]
