@@ -11,6 +11,9 @@ inside posterior.nc                    reader-facing name
 =====================================  ======================================
 ``b[T]``, ``b_intercept``, ``b_slope``  ``T`` (``intercept``, ``nitrogen_kg``, ``tillage=none``)
 ``b_centred_intercept``                ``intercept (as sampled, predictors centred)``
+``b_shifted_intercept``                ``intercept + mean group intercepts (as sampled, predictors centred)``
+``b_shifted_slope[T]``                 ``T + mean group slopes (as sampled)`` (crossed factors)
+``F__contrast[k, T]``, ``F__mean_z[T]``  ``F contrast k T (as sampled)``, ``F mean T (standardised, as sampled)``
 ``residual_sd``, ``nu``, ``dispersion``  unchanged
 ``F__sd[T]``                           ``F.sd`` for the first varying term, ``F.T.sd`` for the others
 ``F__corr[T, U]``                      ``F.corr[T,U]``
@@ -39,6 +42,7 @@ __all__ = ["parameter_name", "factor_terms", "element_names", "find", "readable"
 _GROUP_VALUES = {"effect": "", "coef": " (coefficient as sampled)", "u": " (offset as sampled)",
                  "z": " (standardised offset)"}
 _POPULATION = {"b", "b_intercept", "b_slope"}
+_SAMPLED_POPULATION = {"b_centred_intercept", "b_shifted_intercept", "b_shifted_slope"}
 _LABEL = re.compile(r"^(?P<var>[^\[\]]+?)(?:\[(?P<coords>.*)\])?$")
 
 
@@ -61,6 +65,10 @@ def parameter_name(variable: str, coords: dict, factor_terms: list | None = None
         return values[0] if values else "intercept"
     if variable == "b_centred_intercept":
         return "intercept (as sampled, predictors centred)"
+    if variable == "b_shifted_intercept":
+        return "intercept + mean group intercepts (as sampled, predictors centred)"
+    if variable == "b_shifted_slope":
+        return f"{values[0] if values else 'slope'} + mean group slopes (as sampled)"
     if "__" not in variable:
         return variable + (f"[{','.join(values)}]" if values else "")
     factor, kind = variable.split("__", 1)
@@ -79,6 +87,10 @@ def parameter_name(variable: str, coords: dict, factor_terms: list | None = None
         return f"{factor}.spread.sd"
     if kind in ("spread", "spread_effect") and len(values) == 1:
         return f"{factor}={values[0]} spread" + " (log offset)" * (kind == "spread_effect")
+    if kind == "contrast" and len(values) == 2:
+        return f"{factor} {values[0]} {values[1]} (as sampled)"
+    if kind == "mean_z" and len(values) == 1:
+        return f"{factor} mean {values[0]} (standardised, as sampled)"
     if kind in _GROUP_VALUES and len(values) == 2:
         return f"{factor}={values[0]} {values[1]}{_GROUP_VALUES[kind]}"
     return f"{factor}.{kind.replace('__', '.')}" + (f"[{','.join(values)}]" if values else "")
@@ -132,7 +144,7 @@ def readable(label) -> str | None:
     text = str(label)
     match = _LABEL.match(text)
     variable = match["var"] if match else ""
-    if variable not in _POPULATION | {"b_centred_intercept"} and "__" not in variable:
+    if variable not in _POPULATION | _SAMPLED_POPULATION and "__" not in variable:
         return text
     parts = [p.strip() for p in match["coords"].split(",")] if match["coords"] else []
     return parameter_name(variable, dict(enumerate(parts)))

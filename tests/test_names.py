@@ -21,7 +21,7 @@ import xarray as xr
 from hierwork import names
 
 #: What an internal name looks like: a PyMC variable with ``__``, or the sampler's own intercept and slopes.
-INTERNAL = re.compile(r"[A-Za-z0-9]__[A-Za-z]|b_centred|b_slope|b_intercept")
+INTERNAL = re.compile(r"[A-Za-z0-9]__[A-Za-z]|b_centred|b_shifted|b_slope|b_intercept")
 
 
 def test_every_kind_of_variable_has_its_spec_name():
