@@ -235,7 +235,9 @@ def test_binomial_report_leads_with_the_outcome_scale(lines):
 
 @pytest.fixture(scope="module")
 def demo_runs(tmp_path_factory):
-    return run_demo(tmp_path_factory.mktemp("demo"), overrides=SMALL)
+    # Bounds and predict on every demo spec need draws, not convergence: the shortest runs that sample.
+    return run_demo(tmp_path_factory.mktemp("demo"), overrides={**SMALL, "sampling.warmup": 200,
+                                                                 "sampling.draws": 200})
 
 
 def test_every_demo_spec_is_fitted(demo_runs):
