@@ -208,6 +208,8 @@ def _label(spec, family, est) -> str:
         per = f"{est['rate_per']:,g} {out.exposure}" if out.exposure else (
             "row" if est["rate_per"] == 1 else f"{est['rate_per']:,g} rows")
         return f"{out.column} per {per}"
+    if family.outcome_scale == "expected score":
+        return f"expected {out.column} (as level positions 1, 2, ...)"
     return out.column
 
 
