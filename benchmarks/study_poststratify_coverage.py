@@ -3,7 +3,7 @@
 Usage: python benchmarks/study_poststratify_coverage.py [--replicates N] [--out DIR]
 
 Each replicate simulates a normal outcome in 6 areas of very unequal sample
-size (3 to 30 rows) with a two-level predictor, fits ``y ~ kind + (1 | area)``,
+size (3 to 30 rows) with a two-level predictor, fits a normal model of y on kind with intercepts varying by area,
 and post-stratifies to a population table whose mix of the predictor differs
 from the sample's. The truth of an area is the count-weighted mean of its
 cells' true expected outcomes. Prints the share of areas (and of the whole

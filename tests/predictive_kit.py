@@ -58,6 +58,27 @@ outcome: {column: travel_ns}
 groups: {rail: {column: rail}}
 """
 
+def write_machines(folder: Path, name: str = "spec", sampling: str = "") -> tuple[Path, pd.DataFrame]:
+    """Machines (Milliken and Johnson 1992; tests/data/SOURCES.md) with a worker:machine cell column, and a
+    spec of worker, machine and cell crossed, in ``folder``: ``(spec path, data)``. ``sampling`` is an
+    extra line such as ``sampling: {chains: 2}``."""
+    data = pd.read_csv(DATA / "machines.csv")
+    data["cell"] = data["worker"].astype(str) + ":" + data["machine"]
+    data.to_csv(folder / "machines.csv", index=False)
+    spec = folder / f"{name}.yaml"
+    spec.write_text(f"""format: hierwork/1
+name: machines
+data: machines.csv
+outcome: {{column: score, family: normal}}
+groups:
+  worker: {{column: worker}}
+  machine: {{column: machine}}
+  cell: {{column: cell}}
+{sampling}
+""", encoding="utf-8")
+    return spec, data
+
+
 CBPP = """format: hierwork/1
 name: cbpp
 data: DATA/cbpp.csv

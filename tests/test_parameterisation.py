@@ -16,6 +16,7 @@ import pandas as pd
 import pytest
 import statsmodels.formula.api as smf
 
+import predictive_kit as kit
 from hierwork.plan.parameterisation import Block, choose, variance_components
 
 DATA = Path(__file__).parent / "data"
@@ -118,19 +119,8 @@ def test_check_judges_crossed_factors_from_the_joint_components(tmp_path):
     # data-poor at the low end of its tau.
     import hierwork
 
-    data = pd.read_csv(DATA / "machines.csv")
-    data["cell"] = data["worker"].astype(str) + ":" + data["machine"]
-    data.to_csv(tmp_path / "machines.csv", index=False)
-    (tmp_path / "spec.yaml").write_text("""format: hierwork/1
-name: machines
-data: machines.csv
-outcome: {column: score, family: normal}
-groups:
-  worker: {column: worker}
-  machine: {column: machine}
-  cell: {column: cell}
-""", encoding="utf-8")
-    report = hierwork.check(tmp_path / "spec.yaml")
+    spec, _ = kit.write_machines(tmp_path)
+    report = hierwork.check(spec)
     forms = {f.name: f.parameterisation for f in report.plan.factors}
     assert forms == {"worker": "non_centred", "machine": "non_centred", "cell": "non_centred"}
     assert "jointly" in report.text()

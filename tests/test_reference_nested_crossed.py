@@ -26,6 +26,7 @@ import pytest
 import statsmodels.formula.api as smf
 
 import hierwork
+import predictive_kit as kit
 
 pytestmark = pytest.mark.slow  # every test here fits a model (MCMC)
 
@@ -126,19 +127,9 @@ def test_oats_variance_components_against_reml(oats):
 @pytest.fixture(scope="session")
 def machines(tmp_path_factory):
     folder = tmp_path_factory.mktemp("machines")
-    data = pd.read_csv(DATA / "machines.csv")
-    data["cell"] = data["worker"].astype(str) + ":" + data["machine"]
-    data.to_csv(folder / "machines.csv", index=False)
-    run = _fit(folder, "machines", """format: hierwork/1
-name: machines
-data: machines.csv
-outcome: {column: score, family: normal}
-groups:
-  worker: {column: worker}
-  machine: {column: machine}
-  cell: {column: cell}
-sampling: {chains: 2, warmup: 1000, draws: 1000, seed: 92, target_accept: 0.99}
-""")
+    spec, data = kit.write_machines(folder, "machines",
+                                    "sampling: {chains: 2, warmup: 1000, draws: 1000, seed: 92, target_accept: 0.99}")
+    run = hierwork.fit(spec, out=folder / "run_machines", progress=False)
     # Three machines and six workers leave their SDs' posteriors heavy-tailed;
     # target_accept 0.99 is what the gate's advice asks for on divergences.
     # Crossed factors in MixedLM: one group holding all rows, a variance

@@ -2,7 +2,7 @@
 
 Data: machines (Milliken and Johnson 1992, Analysis of Messy Data I, p. 285;
 tests/data/SOURCES.md): 6 workers x 3 machines x 3 repeats, fitted as
-``score ~ machine + (1 | worker)``. Six workers leave the worker SD shaped by
+a normal model of score on machine with intercepts varying by worker. Six workers leave the worker SD shaped by
 its prior; 54 rows pin down the machine coefficients and the residual SD.
 
 External checks:
