@@ -23,6 +23,7 @@ inside posterior.nc                    reader-facing name
 ``F__coef[G, T]``                      ``F=G T (coefficient as sampled)``
 ``F__u[G, T]``                         ``F=G T (offset as sampled)``
 ``F__z[G, T]``                         ``F=G T (standardised offset)``
+``F__partial[G, T]``                   ``F=G T (partially non-centred offset, as sampled)``
 ``F__spread_sd``                       ``F.spread.sd`` (``spread: varying``)
 ``F__spread[G]``, ``F__spread_effect[G]``  ``F=G spread``, ``F=G spread (log offset)``
 =====================================  ======================================
@@ -40,7 +41,7 @@ __all__ = ["parameter_name", "factor_terms", "element_names", "find", "readable"
 
 #: Group-level variables: suffix -> qualifier after ``F=G T``.
 _GROUP_VALUES = {"effect": "", "coef": " (coefficient as sampled)", "u": " (offset as sampled)",
-                 "z": " (standardised offset)"}
+                 "z": " (standardised offset)", "partial": " (partially non-centred offset, as sampled)"}
 _POPULATION = {"b", "b_intercept", "b_slope"}
 _SAMPLED_POPULATION = {"b_centred_intercept", "b_shifted_intercept", "b_shifted_slope"}
 _LABEL = re.compile(r"^(?P<var>[^\[\]]+?)(?:\[(?P<coords>.*)\])?$")

@@ -15,7 +15,7 @@ from hierwork.plan.families import FAMILY_NAMES
 
 FORMAT = "hierwork/1"
 REQUIRED = object()
-PARAMETERISATIONS = ("auto", "centred", "non_centred")
+PARAMETERISATIONS = ("auto", "centred", "non_centred", "partial")
 _SLUG = re.compile(r"^[A-Za-z0-9][A-Za-z0-9_-]*\Z")
 
 
@@ -73,7 +73,8 @@ FACTOR_KEYS = {
                       [], item=Key("predictor", "a column name, or {column, type, reference, transform}",
                                    fields=COLUMN_KEYS)),
     "within": Key("str", "Name of the factor this one is nested in (labels repeat across parents).", None),
-    "parameterisation": Key("choice", "How the group effects are sampled; 'auto' decides from the data.",
+    "parameterisation": Key("choice", "How the group effects are sampled; 'partial': each group weighted by "
+                            "how informative its data are; 'auto' decides from the data.",
                             "auto", choices=PARAMETERISATIONS),
     "spread": Key("choice", "Residual SD: one for all rows ('fixed'), or each group its own ('varying'; "
                   "normal and Student-t outcomes), partially pooled on the log scale.", "fixed",

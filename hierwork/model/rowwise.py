@@ -8,6 +8,8 @@ covariance; see :mod:`hierwork.model.blocks` for the centring of predictors):
   ``c_j ~ N(A (b_T + W_j gamma), A S A')`` replace ``b_T + u_j`` in every row
   (hierarchical centring, Gelfand, Sahu and Carlin 1995, Biometrika 82,
   479-488);
+* partial (``F__partial``): each group between the two by its weight
+  (:func:`_partial`);
 * centred, one of several factors: the offsets are sampled directly,
   ``u_j ~ N(0, A S A')`` (letting one of several crossed or nested factors carry
   the population values would tie its coefficients to the other factors'
@@ -89,10 +91,7 @@ def build_model(plan: ModelPlan, centre: bool = True, reduced: bool = False, shi
             shape = (f.n_groups, len(f.varying))
             form = f.parameterisation if centre else "non_centred"  # generative form for prior simulation
             if form == "centred" and len(plan.factors) == 1:
-                mean = pt.broadcast_to(b[list(f.varying_cols)], shape)  # data units: b_T + W gamma
-                if shift is not None:
-                    mean = pt.set_subtensor(mean[:, 0], mean[:, 0] + shift)
-                mean = pt.dot(mean, A.T)  # at centred x
+                mean = _group_mean(b, f, shift, A, shape)
                 start = np.zeros(shape)
                 start[:, 0] = plan.priors["intercept"].params.get("mu", 0.0)
                 coef = _centred(f"{f.name}__coef", mean, sd, chol_c, dims, start)
@@ -100,7 +99,10 @@ def build_model(plan: ModelPlan, centre: bool = True, reduced: bool = False, shi
                 parts.append((f, pt.dot(coef, to_data), None))
                 anchored.update(f.varying_cols)
             else:
-                if form == "centred" and shifted:
+                if form == "partial":
+                    mean = _group_mean(b, f, shift, A, shape) if len(plan.factors) == 1 else pt.zeros(shape)
+                    effect_c = _partial(f.name, mean, sd, chol_c, f.weights, dims)
+                elif form == "centred" and shifted:
                     effect_c = _contrasts_and_mean(f.name, sd, chol_c, shape)
                 elif form == "centred":
                     effect_c = _centred(f"{f.name}__u", pt.zeros(shape), sd, chol_c, dims, np.zeros(shape))
@@ -134,6 +136,30 @@ def build_model(plan: ModelPlan, centre: bool = True, reduced: bool = False, shi
     return model
 
 
+def _group_mean(b, f, shift, A, shape):
+    """Each group's population value at the centred predictors: ``A (b_T + W_j gamma)``, shape (J, q)."""
+    mean = pt.broadcast_to(b[list(f.varying_cols)], shape)  # data units: b_T + W gamma
+    if shift is not None:
+        mean = pt.set_subtensor(mean[:, 0], mean[:, 0] + shift)
+    return pt.dot(mean, A.T)
+
+
+def _partial(name, mean, sd, chol, weights, dims):
+    """Offsets partially non-centred, group by group: ``p_jt ~ N(w_jt m_jt, sd_t^(2 w_jt))``.
+
+    The offsets are ``u_j = chol (sd^(-w_j) * (p_j - w_j * m_j))``, so that
+    ``u_j ~ N(0, chol chol')`` exactly (Gorinova, Moore and Hoffman 2020,
+    with a weight per group; :func:`hierwork.plan.parameterisation.judge`):
+    ``w = 1`` is the centred form (``p_j = m_j + u_j`` with one term),
+    ``w = 0`` the non-centred ``z``. ``mean`` (J, q): the groups' population
+    values ``m_j`` (hierarchical centring of the location, the only factor)
+    or zeros.
+    """
+    scale = sd[None, :] ** weights
+    value = pm.Normal(f"{name}__partial", mu=weights * mean, sigma=scale, dims=dims)
+    return pt.dot((value - weights * mean) / scale, chol.T)
+
+
 def _contrasts_and_mean(name, sd, chol, shape):
     """Offsets ``u_j ~ N(0, S)`` of a centred factor whose mean effect the data do not identify.
 
@@ -158,7 +184,7 @@ def _contrasts_and_mean(name, sd, chol, shape):
 def _centred(name, mean, sd, chol, dims, start):
     """Group values sampled directly: ``N(mean_j, chol chol')`` for every group ``j``.
 
-    With several terms the density is written out with one triangular solve
+    With several terms the density is written out with one solve
     for all groups (a batched multivariate normal solves once per group, which
     is many times slower); the values are then a flat variable plus that
     density, which is the same distribution.
@@ -166,9 +192,11 @@ def _centred(name, mean, sd, chol, dims, start):
     if len(pm.modelcontext(None).coords[dims[1]]) == 1:
         return pm.Normal(name, mu=mean, sigma=sd, dims=dims)
     value = pm.Flat(name, dims=dims, initval=start)
-    z = pt.linalg.solve_triangular(chol, (value - mean).T, lower=True)
+    # ``chol`` is ``A L`` (effects at the centred predictors), not triangular when a slope's
+    # predictor has a non-zero mean: solve it in full; ``det A = 1``, so ``log det = log det L``.
+    z = pt.linalg.solve(chol, (value - mean).T)
     J, q = start.shape
-    pm.Potential(f"{name}_density", -0.5 * pt.sum(z ** 2) - J * pt.sum(pt.log(pt.diag(chol)))
+    pm.Potential(f"{name}_density", -0.5 * pt.sum(z ** 2) - J * pt.log(pt.abs(pt.linalg.det(chol)))
                  - 0.5 * J * q * np.log(2 * np.pi))
     return value
 

@@ -47,7 +47,10 @@ class FactorPlan:
     parent : str or None
         Factor this one is nested in; ``parent_index`` (J,) maps groups to parent groups.
     parameterisation, reason : str
-        ``"centred"`` or ``"non_centred"`` and why.
+        ``"centred"``, ``"non_centred"`` or ``"partial"`` and why.
+    weights : ndarray (J, q) or None
+        With ``"partial"``: each group's weight per varying term, 1 centred, 0 non-centred
+        (:func:`hierwork.plan.parameterisation.judge`).
     spread : str
         ``"varying"``: each group has its own residual SD (``F__spread``), else ``"fixed"``.
     """
@@ -67,6 +70,7 @@ class FactorPlan:
     reason: str
     group_design: Design = Design(())
     spread: str = "fixed"
+    weights: np.ndarray | None = None
 
     @property
     def n_groups(self) -> int:
@@ -182,14 +186,14 @@ def _parameterise(factor_plans, family, rows, X) -> list:
     predictors per row; each varying term of each factor is one component
     (:func:`hierwork.plan.parameterisation.variance_components`).
     """
-    if not any(f.parameterisation == "auto" for f in factor_plans):
+    if not any(f.parameterisation in ("auto", "partial") for f in factor_plans):
         return factor_plans
     z, var = family.working_response(rows)
     fixed = np.column_stack([X] + [f.W[f.index] for f in factor_plans if f.predictors])
     blocks = [parameterisation.Block(f.name, term, f.index, f.n_groups, None if k == 0 else X[:, col] - X[:, col].mean())
               for f in factor_plans for k, (term, col) in enumerate(zip(f.varying, f.varying_cols))]
     components = parameterisation.variance_components(z, var, fixed, blocks)
-    return [replace(f, **dict(zip(("parameterisation", "reason"),
+    return [replace(f, **dict(zip(("parameterisation", "reason", "weights"),
                                   parameterisation.choose(f.parameterisation, components.of(f.name)))))
             for f in factor_plans]
 
