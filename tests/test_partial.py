@@ -183,3 +183,10 @@ def test_check_and_plan_say_partial_and_its_weights(tmp_path):
     report = hierwork.check(tmp_path / "spec.yaml")
     line = next(x for x in report.text().splitlines() if "batch effects" in x)
     assert "partial" in line and "weights" in line and "median" in line
+    from hierwork.plan.describe import plan_as_dict
+
+    stored = plan_as_dict(report.plan)["factors"][0]
+    assert stored["parameterisation"] == "partial"
+    weights = np.array(stored["partial_weights"]["weights"])
+    assert weights.shape == (6, 1) and np.all((weights >= 0) & (weights <= 1))
+    assert stored["partial_weights"]["groups"] == list(report.plan.factors[0].levels)

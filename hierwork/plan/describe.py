@@ -37,6 +37,8 @@ def plan_as_dict(plan, decisions: dict | None = None) -> dict:
             "varying": list(f.varying), "predictors": list(f.predictors),
             "predictor_design": f.group_design.to_dict(), "spread": f.spread, "sizes": group_sizes(f),
             "parameterisation": f.parameterisation, "reason": f.reason,
+            **({} if f.weights is None else {"partial_weights": {  # per group, then per varying term
+                "groups": list(f.levels), "terms": list(f.varying), "weights": np.round(f.weights, 4).tolist()}}),
         } for f in plan.factors],
         "priors": {k: p.to_dict() for k, p in plan.priors.items()},
         "notes": list(plan.notes),

@@ -1,4 +1,4 @@
-"""Choosing centred or non-centred group effects from how informative the data are.
+"""Choosing centred, non-centred or per-group partial group effects from how informative the data are.
 
 Rule (``parameterisation: auto``), from all factors at once:
 
@@ -26,15 +26,22 @@ Rule (``parameterisation: auto``), from all factors at once:
    approximated by its diagonal blocks per group (each factor conditional on
    the others' estimates), which can overstate ``kappa_j`` for crossed factors
    with few repeats.
-3. **Decision.** Because the posterior of ``tau`` reaches well below its
-   estimate when groups are few, ``kappa_j`` is judged at the lower 5% bound of
-   ``tau^2`` (the estimate times ``chi2_{0.05, J-1} / (J-1)``, treating it as a
-   one-way ANOVA variance component): 3 groups need about 20 times more data
-   per group than many groups. A factor is sampled **centred** if the median
-   ``kappa_j`` of each of its varying terms is at least 1 there, otherwise
-   **non-centred**; when a component is estimated at (practically) 0 the factor
-   is non-centred (EM approaches 0 slowly, so a component whose largest
-   ``kappa_j`` is under 0.01 counts as 0).
+3. **Decision** (:func:`judge`). For each form, how much the conditional
+   posterior SD of the variable it samples changes across the 90% interval of
+   ``tau^2`` (approximated by the one-way ANOVA chi-square), in log units, for
+   the worst group: NUTS adapts one step size, so that change is what it
+   cannot follow. Centred beats non-centred for a group iff ``kappa_j >= 1``
+   at the geometric middle of the interval; with many groups that is the
+   estimate, with few the interval reaches ``tau = 0`` and the factor is
+   non-centred. When the groups disagree (data-rich and data-poor groups in one
+   factor: no weight common to all makes the change smaller than
+   ``PARTIAL_GAIN``) the factor is sampled **partial**: each group non-centred
+   to its own degree ``lambda_j`` (Gorinova, Moore and Hoffman 2020), the
+   weight that makes its scale equal at both ends of the interval (with many
+   groups ``kappa_j / (1 + kappa_j)``, the optimal weight of Papaspiliopoulos,
+   Roberts and Sköld 2007 for the normal case). When a component is estimated
+   at (practically) 0 the factor is non-centred (EM approaches 0 slowly, so a
+   component whose largest ``kappa_j`` is under 0.01 counts as 0).
 
 Why: the centred form mixes well when each group is pinned down by its own data
 and poorly (a funnel) when the population distribution dominates; the
