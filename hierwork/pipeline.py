@@ -110,6 +110,12 @@ def sample_posterior(report: CheckReport, progress: bool | None = None):
         problem = collapsed_problem(plan)
         idata = run_sampler(build_collapsed_model(plan, problem), settings, report.engine, progress)
         return add_group_effects(idata, plan, settings["seed"], problem)
+    if report.path == "partial":
+        from hierwork.model.partial import add_group_effects, build_partial_model, partial_problem
+
+        problem = partial_problem(plan)
+        idata = run_sampler(build_partial_model(plan, problem), settings, report.engine, progress)
+        return add_group_effects(idata, plan, settings["seed"], problem)
     from hierwork.model.rowwise import build_model
 
     return run_sampler(build_model(plan, reduced=report.path == "reduced"), settings, report.engine, progress)

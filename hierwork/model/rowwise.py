@@ -45,7 +45,8 @@ from hierwork.model.spread import row_residual_sd
 from hierwork.plan.plan import ModelPlan
 
 
-def build_model(plan: ModelPlan, centre: bool = True, reduced: bool = False, shift: bool = True) -> pm.Model:
+def build_model(plan: ModelPlan, centre: bool = True, reduced: bool = False, shift: bool = True,
+                likelihood_of=None) -> pm.Model:
     """Build the PyMC model of a plan with every group effect sampled.
 
     Parameters
@@ -65,6 +66,11 @@ def build_model(plan: ModelPlan, centre: bool = True, reduced: bool = False, shi
         :func:`~hierwork.model.paths.shifted_columns` shifted by the mean group
         effects (default; the same posterior). ``False`` samples them as they
         are (the reference the shift is tested against).
+    likelihood_of : callable, optional
+        ``likelihood_of(b, free_cols, parts, extras)`` adds the likelihood
+        instead (the partially collapsed path, :mod:`hierwork.model.partial`);
+        ``parts`` are ``(factor, values, shift)`` as for
+        :func:`reduced_normal_likelihood`.
 
     Returns
     -------
@@ -114,7 +120,9 @@ def build_model(plan: ModelPlan, centre: bool = True, reduced: bool = False, shi
                 offset = pt.inc_subtensor(offset[list(f.varying_cols)], values.mean(axis=0))
             b, _ = population_block(plan, centre, offset)
         free = [k for k in range(plan.X.shape[1]) if k not in anchored]
-        if reduced and plan.family.exact_normal:
+        if likelihood_of is not None:
+            likelihood_of(b, free, parts, extras)
+        elif reduced and plan.family.exact_normal:
             reduced_normal_likelihood(plan, b, free, parts, extras.get("residual_sd"))
         else:
             cells = row_cells(plan.X, [f.index for f in plan.factors]) if reduced else None
@@ -205,7 +213,22 @@ def reduced_normal_likelihood(plan: ModelPlan, b, free_cols, parts, sigma) -> No
     sigma : scalar tensor or None
         ``residual_sd`` (None with known SDs).
     """
-    cell, cell_groups = cell_index(*[f.index for f, _, _ in parts]) if parts else (
+    stats, coef, effects, _ = cell_terms(plan, b, free_cols, parts)
+    loglik = marginal.reduced_loglik(stats, coef, effects, sigma)
+    pm.Potential("y_reduced", loglik.sum())
+
+
+def cell_terms(plan: ModelPlan, b, free_cols, parts, extra=()):
+    """Cell statistics and the per-cell terms of the reduced likelihood.
+
+    Cells are the combinations of the groups of the ``parts``' factors and of
+    the ``extra`` factors. Returns ``(stats, coef, effects, cell_groups)``: the
+    coefficients ``b`` on ``free_cols`` (0 elsewhere), the ``(values, cols,
+    cell_group)`` of :func:`~hierwork.model.marginal.reduced_loglik`, and the
+    (cells, factors) group codes, parts' factors first.
+    """
+    factors = [f for f, _, _ in parts] + list(extra)
+    cell, cell_groups = cell_index(*[f.index for f in factors]) if factors else (
         np.zeros(plan.n, dtype=np.int64), np.zeros((1, 0), dtype=np.int64))
     stats = cell_stats(plan.y, plan.X, cell, len(cell_groups), plan.known_sd)
     mask = np.zeros(plan.X.shape[1])
@@ -215,5 +238,4 @@ def reduced_normal_likelihood(plan: ModelPlan, b, free_cols, parts, sigma) -> No
         effects.append((values, tuple(f.varying_cols), cell_groups[:, k]))
         if shift is not None:
             effects.append((shift[:, None], (0,), cell_groups[:, k]))
-    loglik = marginal.reduced_loglik(stats, b * mask, effects, sigma)
-    pm.Potential("y_reduced", loglik.sum())
+    return stats, b * mask, effects, cell_groups
