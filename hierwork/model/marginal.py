@@ -340,10 +340,24 @@ class Integrated:
     n_groups: int
 
     def sums(self, xp, columns):
-        """Per-group sums of (J,) columns: numpy's bincount or one PyTensor scatter-add."""
+        """Per-group sums of (J,) columns.
+
+        numpy: bincount. PyTensor: with cells sorted by group and every group
+        present, differences of cumulative sums at the groups' last cells (a
+        cheap gradient); else one scatter-add.
+        """
         if xp is np:
             return [np.bincount(self.cell_group, weights=c, minlength=self.n_groups) for c in columns]
-        return _segment_sum(xp, columns, self.cell_group, self.n_groups)
+        g = np.asarray(self.cell_group)
+        if not (np.all(np.diff(g) >= 0) and len(g) and g[0] == 0 and g[-1] == self.n_groups - 1
+                and np.all(np.diff(g) <= 1)):
+            return _segment_sum(xp, columns, g, self.n_groups)
+        last = np.flatnonzero(np.r_[g[1:] != g[:-1], True])
+        out = []
+        for c in columns:
+            at = xp.cumsum(c)[last]
+            out.append(xp.concatenate([at[:1], at[1:] - at[:-1]]))
+        return out
 
 
 def partial_group_loglik(stats: CellStats, b, effects, factor: Integrated, chol, sigma=None, xp=None,
@@ -379,11 +393,17 @@ def partial_group_loglik(stats: CellStats, b, effects, factor: Integrated, chol,
     """
     xp = _namespace(xp)
     _check_sigma(stats, sigma)
-    cols = list(factor.cols)
-    tt = stats.shifted(_cell_coefficients(xp, stats.n_terms, b, effects))
-    xtx_t = (stats.xtx * tt[:, None, :]).sum(axis=-1)
-    rr = stats.yty - 2.0 * (tt * stats.xty).sum(axis=-1) + (tt * xtx_t).sum(axis=-1)
-    summed = factor.sums(xp, [rr] + [stats.xty[:, c] - xtx_t[:, c] for c in cols])
+    cols, p = list(factor.cols), stats.n_terms
+    # Per-column (J,) vectors, so the products fuse into a few elementwise loops (see above).
+    b = _f64(xp, b)
+    tt = [b[a] + 0.0 * stats.centre if a else b[0] - stats.centre for a in range(p)]
+    for u, ucols, cell_group in effects:
+        u = _f64(xp, u)
+        for k, a in enumerate(ucols):
+            tt[a] = tt[a] + u[:, k][np.asarray(cell_group)]
+    xtx_t = [sum(stats.xtx[:, a, c] * tt[c] for c in range(p)) for a in range(p)]
+    rr = stats.yty + sum(tt[a] * (xtx_t[a] - 2.0 * stats.xty[:, a]) for a in range(p))
+    summed = factor.sums(xp, [rr] + [stats.xty[:, c] - xtx_t[c] for c in cols])
     q = len(cols)
     CC = {(i, k): np.bincount(factor.cell_group, weights=stats.xtx[:, cols[i], cols[k]],
                               minlength=factor.n_groups) for i in range(q) for k in range(i, q)}
