@@ -176,11 +176,15 @@ def one(method: str, size: str) -> dict:
         return run_handwritten(size, Path(tmp), "nutpie" if engine == "nutpie" else "pymc", form == "c")
 
 
-def measure(method: str, size: str, cap: float) -> dict:
-    """Run one fit in a child process; track the tree's peak memory; kill at the cap."""
+def measure(method: str, size: str, cap: float, script: str = __file__, argv: list | None = None) -> dict:
+    """Run one fit in a child process; track the tree's peak memory; kill at the cap.
+
+    ``script`` and ``argv`` name the child (default: this script's ``--one METHOD SIZE``),
+    which prints its result as one JSON line; sibling benchmarks reuse this.
+    """
     import psutil
 
-    cmd = [sys.executable, __file__, "--one", method, size]
+    cmd = [sys.executable, script, *(argv or ["--one", method, size])]
     start = time.perf_counter()
     proc = subprocess.Popen(cmd, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
     parent, peak = psutil.Process(proc.pid), 0

@@ -110,6 +110,12 @@ def sample_posterior(report: CheckReport, progress: bool | None = None):
         problem = collapsed_problem(plan)
         idata = run_sampler(build_collapsed_model(plan, problem), settings, report.engine, progress)
         return add_group_effects(idata, plan, settings["seed"], problem)
+    if report.path == "semi_collapsed":
+        from hierwork.model.semi_collapsed import add_group_effects, build_semi_collapsed_model, semi_collapsed_problem
+
+        problem = semi_collapsed_problem(plan)
+        idata = run_sampler(build_semi_collapsed_model(plan, problem), settings, report.engine, progress)
+        return add_group_effects(idata, plan, settings["seed"], problem)
     from hierwork.model.rowwise import build_model
 
     return run_sampler(build_model(plan, reduced=report.path == "reduced"), settings, report.engine, progress)

@@ -103,11 +103,12 @@ def _data(rng, family: str) -> pd.DataFrame:
 
 _CASES = {
     # name: (family, outcome extras, groups, extra sampling keys). Every family, every exact path
-    # (collapsed, reduced, plain), every form of group effect (standardised, as sampled, Cholesky,
+    # (collapsed, semi_collapsed, reduced, plain), every form of group effect (standardised, as sampled, Cholesky,
     # group-level predictor, varying residual spread) and every family parameter once.
     "normal-collapsed": ("normal", "", "depot: {column: depot, within: region, varying: [intercept, load]}\n"
                                        "  region: {column: region}", ""),
-    "normal-reduced": ("normal", "", "depot: {column: depot}\n  shift: {column: shift}", ""),
+    "normal-semi_collapsed": ("normal", "", "depot: {column: depot}\n  shift: {column: shift}", ""),
+    "normal-reduced": ("normal", "", "depot: {column: depot}\n  shift: {column: shift}", "  path: reduced\n"),
     "normal-spread": ("normal", "", "depot: {column: depot, spread: varying}", ""),
     "binomial-centred": ("binomial", ", trials: size",
                          "depot: {column: depot, predictors: [capacity], parameterisation: centred}", ""),
@@ -180,7 +181,7 @@ def test_no_internal_name_reaches_a_reader(fitted):
         diagnostics = json.loads((run / "diagnostics.json").read_text())
         assert not [c["worst_parameter"] for c in diagnostics["checks"]
                     if c["worst_parameter"] and INTERNAL.search(c["worst_parameter"])]
-    assert paths == {"collapsed", "reduced", "plain"}
+    assert paths == {"collapsed", "semi_collapsed", "reduced", "plain"}
     queue = Queue(batch, create=True)
     for k, case in enumerate(runs):
         diagnostics = json.loads((runs[case][0] / "diagnostics.json").read_text())

@@ -104,7 +104,7 @@ def _crossed_truth(b0, u_op, u_mach):
 
 
 def test_crossed_operators_and_machines_normal(tmp_path):
-    """Normal outcome, operator x machine crossed: reduced path."""
+    """Normal outcome, operator x machine crossed: semi-collapsed path (operator integrated out)."""
     rng = np.random.default_rng(12)
     o_idx, m_idx, x = _crossed(rng, 8, 6, 3)
     b0, b1, op_sd, mach_sd, sigma = 20.0, 1.5, 2.0, 1.0, 1.0
@@ -113,7 +113,7 @@ def test_crossed_operators_and_machines_normal(tmp_path):
     frame = pd.DataFrame({"operator": [f"op{j}" for j in o_idx], "machine": [f"m{k}" for k in m_idx],
                           "x": x, "y": y})
     run = _fit(tmp_path, frame, {"column": "y", "family": "normal"},
-               {"operator": {"column": "operator"}, "machine": {"column": "machine"}}, "reduced")
+               {"operator": {"column": "operator"}, "machine": {"column": "machine"}}, "semi_collapsed")
     _assert_nominal(_coverage(run, _crossed_truth(b0, u_op, u_mach),
                               {"intercept": b0, "x": b1, "operator.sd": op_sd, "machine.sd": mach_sd,
                                "residual_sd": sigma}))

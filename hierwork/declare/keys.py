@@ -119,10 +119,11 @@ SPEC_KEYS = {
         "cores": Key("int", "Processes for chains (default: chains, at most the CPU count).", None, low=1),
         "engine": Key("choice", "NUTS implementation: PyMC's own, nutpie, or chosen by problem size.",
                       "auto", choices=("auto", "pymc", "nutpie")),
-        "path": Key("choice", "Likelihood form: collapsed (normal, effects integrated out), reduced (per "
+        "path": Key("choice", "Likelihood form: collapsed (normal, effects integrated out), semi_collapsed (normal, "
+                    "the factor with most groups integrated out, the others sampled), reduced (per "
                     "cell: sufficient statistics for normal, summed identical rows for bernoulli, binomial "
                     "and poisson), or per-row; 'auto' takes the fastest exact one that applies.",
-                    "auto", choices=("auto", "collapsed", "reduced", "plain")),
+                    "auto", choices=("auto", "collapsed", "semi_collapsed", "reduced", "plain")),
     }),
     "gate": Key("section", "Convergence checks that must pass before results count.", {}, fields={
         "r_hat_max": Key("float", "Largest rank-normalised split R-hat allowed.", 1.01, low=1.0),

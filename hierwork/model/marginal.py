@@ -181,12 +181,17 @@ def _leaf(xp, stats: CellStats, b, cols, sigma):
         xtx_b = [v + _matvec(xp, xtx[:, c, 1:], rest) for v, c in zip(xtx_b, cols)]
     Cr = [xty[:, c] - v for c, v in zip(cols, xtx_b)]
     CC = {(i, k): stats.xtx[:, cols[i], cols[k]] for i in range(len(cols)) for k in range(i, len(cols))}
-    acc = stats.n * _LOG_2PI
-    if stats.known_sd:
-        return rr, Cr, CC, acc + stats.log_noise_var
+    return _scaled(xp, rr, Cr, CC, stats.n, stats.log_noise_var, sigma)
+
+
+def _scaled(xp, rr, Cr, CC, n, log_noise_var, sigma):
+    """Products divided by the residual variance (unless SDs are known), with ``n log 2 pi + log|noise|``."""
+    acc = n * _LOG_2PI
+    if log_noise_var is not None:
+        return rr, Cr, CC, acc + log_noise_var
     inv = 1.0 / sigma**2
     return (rr * inv, [v * inv for v in Cr], {key: v * inv for key, v in CC.items()},
-            acc + stats.n * xp.log(sigma**2))
+            acc + n * xp.log(sigma**2))
 
 
 def _integrate(xp, rr, Cr, CC, acc, step: _Step, L):
@@ -296,21 +301,155 @@ def reduced_loglik(stats: CellStats, b, effects, sigma=None, xp=None):
     """
     xp = _namespace(xp)
     _check_sigma(stats, sigma)
-    p = stats.n_terms
     sigma = _f64(xp, sigma)
-    t = _f64(xp, b)[None, :]
-    for u, cols, cell_group in effects:
-        u = _f64(xp, u)
-        embed = np.zeros((len(cols), p))
-        embed[np.arange(len(cols)), list(cols)] = 1.0
-        t = t + (u[np.asarray(cell_group)][:, :, None] * embed[None]).sum(axis=1)
-    tt = stats.shifted(t)
+    tt = stats.shifted(_cell_coefficients(xp, stats.n_terms, b, effects))
     rss = (stats.yty - 2.0 * (tt * stats.xty).sum(axis=-1)
            + (tt * (stats.xtx * tt[:, None, :]).sum(axis=-1)).sum(axis=-1))
     acc = stats.n * _LOG_2PI
     if stats.known_sd:
         return -0.5 * (acc + stats.log_noise_var + rss)
     return -0.5 * (acc + stats.n * xp.log(sigma**2) + rss / sigma**2)
+
+
+def _cell_coefficients(xp, p, b, effects):
+    """(J, p) coefficients of every cell: ``b`` plus each factor's effect embedded in its columns."""
+    t = _f64(xp, b)[None, :]
+    for u, cols, cell_group in effects:
+        u = _f64(xp, u)
+        embed = np.zeros((len(cols), p))
+        embed[np.arange(len(cols)), list(cols)] = 1.0
+        t = t + (u[np.asarray(cell_group)][:, :, None] * embed[None]).sum(axis=1)
+    return t
+
+
+@dataclass(frozen=True)
+class Integrated:
+    """The one factor the partially collapsed likelihood integrates out.
+
+    Parameters
+    ----------
+    cols : tuple of int
+        Design columns its effects multiply.
+    cell_group : (J,) int
+        Its group of every cell (cells are combinations of every factor's groups).
+    n_groups : int
+    """
+
+    cols: tuple
+    cell_group: np.ndarray = field(compare=False)
+    n_groups: int
+
+    def sums(self, xp, columns):
+        """Per-group sums of (J,) columns.
+
+        numpy: bincount. PyTensor: with cells sorted by group and every group
+        present, differences of cumulative sums at the groups' last cells (a
+        cheap gradient); else one scatter-add.
+        """
+        if xp is np:
+            return [np.bincount(self.cell_group, weights=c, minlength=self.n_groups) for c in columns]
+        g = np.asarray(self.cell_group)
+        if not (np.all(np.diff(g) >= 0) and len(g) and g[0] == 0 and g[-1] == self.n_groups - 1
+                and np.all(np.diff(g) <= 1)):
+            return _segment_sum(xp, columns, g, self.n_groups)
+        last = np.flatnonzero(np.r_[g[1:] != g[:-1], True])
+        out = []
+        for c in columns:
+            at = xp.cumsum(c)[last]
+            out.append(xp.concatenate([at[:1], at[1:] - at[:-1]]))
+        return out
+
+
+def integrated_group_loglik(stats: CellStats, b, effects, factor: Integrated, chol, sigma=None, xp=None,
+                         keep_factor=False):
+    """Log-likelihood of each group of one factor with its effects integrated out, the others' given.
+
+    Given every other factor's effects, the rows of different groups of the
+    integrated factor are independent, and each group is a one-level collapsed
+    problem with the residual ``r = y - X t_cell`` (``t_cell`` from ``b`` and the
+    given effects, :func:`reduced_loglik`): its residual products ``r'r`` and
+    ``Z'r`` are summed over the group's cells, then integrated as in the module
+    docstring. Exact; O(cells x p^2) per evaluation.
+
+    Parameters
+    ----------
+    stats : CellStats
+        Statistics by cells of every factor (including the integrated one).
+    b, effects
+        As for :func:`reduced_loglik`, without the integrated factor.
+    factor : Integrated
+    chol : (q, q)
+        Cholesky factor of the integrated factor's effect covariance.
+    sigma : scalar, optional
+        Residual SD; omitted with known SDs.
+    xp : module, optional
+        ``pytensor.tensor`` (default) or ``numpy``.
+    keep_factor : bool
+        Also return ``(R, e)`` of the integration (for the exact draws).
+
+    Returns
+    -------
+    (G,) per-group log-likelihood, or ``(loglik, (R, e))`` with ``keep_factor``.
+    """
+    xp = _namespace(xp)
+    _check_sigma(stats, sigma)
+    cols, p = list(factor.cols), stats.n_terms
+    # Per-column (J,) vectors, so the products fuse into a few elementwise loops (see above).
+    b = _f64(xp, b)
+    tt = [b[a] + 0.0 * stats.centre if a else b[0] - stats.centre for a in range(p)]
+    for u, ucols, cell_group in effects:
+        u = _f64(xp, u)
+        for k, a in enumerate(ucols):
+            tt[a] = tt[a] + u[:, k][np.asarray(cell_group)]
+    xtx_t = [sum(stats.xtx[:, a, c] * tt[c] for c in range(p)) for a in range(p)]
+    rr = stats.yty + sum(tt[a] * (xtx_t[a] - 2.0 * stats.xty[:, a]) for a in range(p))
+    summed = factor.sums(xp, [rr] + [stats.xty[:, c] - xtx_t[c] for c in cols])
+    q = len(cols)
+    CC = {(i, k): np.bincount(factor.cell_group, weights=stats.xtx[:, cols[i], cols[k]],
+                              minlength=factor.n_groups) for i in range(q) for k in range(i, q)}
+    n = np.bincount(factor.cell_group, weights=stats.n, minlength=factor.n_groups)
+    noise = None if not stats.known_sd else np.bincount(factor.cell_group, weights=stats.log_noise_var,
+                                                         minlength=factor.n_groups)
+    rr, Cr, CC, acc = _scaled(xp, summed[0], summed[1:], CC, n, noise, _f64(xp, sigma))
+    step = _Step(zpos=tuple(range(q)), keep=(), tracked=tuple(cols))
+    rr, _, _, acc, (R, e, _) = _integrate(xp, rr, Cr, CC, acc, step, _f64(xp, chol))
+    ll = -0.5 * (acc + rr)
+    return (ll, (R, e)) if keep_factor else ll
+
+
+def draw_integrated_effects(stats: CellStats, b, effects, factor: Integrated, chols, sigma=None,
+                         rng: np.random.Generator | None = None) -> np.ndarray:
+    """Exact draws of the integrated factor's effects given each posterior draw of the rest.
+
+    Parameters
+    ----------
+    stats, factor
+        As for :func:`integrated_group_loglik`.
+    b : (D, p) array
+        Posterior draws of the population coefficients.
+    effects : list of (u, cols, cell_group)
+        As for :func:`reduced_loglik`, each ``u`` with a leading draw axis (D, G_f, q_f).
+    chols : (D, q, q) array
+    sigma : (D,) array, optional
+    rng : numpy.random.Generator
+
+    Returns
+    -------
+    (D, G, q) effects (offsets from the population coefficients, original units).
+    """
+    if rng is None:
+        raise ValueError("pass a seeded numpy Generator")
+    n_draws = len(b)
+    q = len(factor.cols)
+    out = np.empty((n_draws, factor.n_groups, q))
+    for d in range(n_draws):
+        L = np.asarray(chols[d], float)
+        _, (R, e) = integrated_group_loglik(stats, b[d], [(u[d], c, g) for u, c, g in effects], factor, L,
+                                         None if sigma is None else float(sigma[d]), xp=np,
+                                         keep_factor=True)
+        v = [e[i] + rng.standard_normal(factor.n_groups) for i in range(q)]
+        out[d] = np.stack(_backward(R, v), axis=1) @ L.T
+    return out
 
 
 def draw_effects(stats: CellStats, levels: list[Level], b, chols, sigma=None,

@@ -3,9 +3,13 @@
 * ``collapsed``: normal outcome whose factors form one nesting chain (one
   factor, or plot within farm within region ...): every level's effects are
   integrated out (:mod:`hierwork.model.collapsed`);
-* ``reduced``: normal outcome with crossed factors (or none): the group effects
-  are sampled, the likelihood evaluated from per-cell sufficient statistics,
-  exact and O(cells) (:func:`hierwork.model.rowwise.reduced_normal_likelihood`);
+* ``semi_collapsed``: normal outcome with crossed factors: the factor with the most
+  groups is integrated out exactly given the others' effects, which are
+  sampled; likelihood from per-cell sufficient statistics, O(cells)
+  (:mod:`hierwork.model.semi_collapsed`);
+* ``reduced``: normal outcome without factors, or when asked for: the group
+  effects are sampled, the likelihood evaluated from per-cell sufficient
+  statistics, exact and O(cells) (:func:`hierwork.model.rowwise.reduced_normal_likelihood`);
 * ``reduced`` also for counts and proportions (bernoulli, binomial, poisson)
   when rows share predictors and group memberships: each such cell is one
   binomial (successes and trials summed) or Poisson (counts and exposures
@@ -19,12 +23,14 @@ the decision without importing PyMC.
 """
 from __future__ import annotations
 
+from dataclasses import replace
+
 import numpy as np
 
 from hierwork.errors import SpecError
 
 #: Paths from fastest to most general.
-ORDER = ("collapsed", "reduced", "plain")
+ORDER = ("collapsed", "semi_collapsed", "reduced", "plain")
 
 
 def nesting_chain(plan) -> list | None:
@@ -59,8 +65,23 @@ def best_path(plan) -> tuple[str, str]:
         what = "one grouping factor" if len(plan.factors) == 1 else "nested factors"
         return "collapsed", (f"normal outcome with {what}: group effects integrated out exactly, "
                              "then drawn from their conditional normal")
-    return "reduced", ("normal outcome with crossed factors: likelihood from per-cell sufficient "
-                       "statistics, group effects sampled")
+    f = integrated_factor(plan)
+    return "semi_collapsed", (f"normal outcome with crossed factors: {f.name} ({f.n_groups:,} groups, the most) "
+                       "integrated out exactly given the other effects, which are sampled; likelihood from "
+                       "per-cell sufficient statistics")
+
+
+def integrated_factor(plan):
+    """The factor the semi-collapsed path integrates out: the one with most groups x varying terms (first on ties)."""
+    return max(plan.factors, key=lambda f: f.n_groups * len(f.varying))
+
+
+def sampled_plan(plan, path: str):
+    """The plan of the factors whose effects NUTS samples on a path (all but the integrated one on ``semi_collapsed``)."""
+    if path != "semi_collapsed":
+        return plan
+    f = integrated_factor(plan)
+    return replace(plan, factors=tuple(g for g in plan.factors if g is not f))
 
 
 def crossed_pair(plan) -> tuple | None:
@@ -98,6 +119,7 @@ def shifted_columns(plan) -> tuple:
 
 def shift_decision(plan, path: str) -> tuple | None:
     """``(what, choice, reason)`` of the shift for ``check``, or None when it does not apply."""
+    plan = sampled_plan(plan, path)
     if path == "collapsed" or not (cols := shifted_columns(plan)):
         return None
     f, g = crossed_pair(plan)
@@ -138,7 +160,7 @@ def likelihood_size(plan, path: str) -> int:
         return count_cells(plan)
     if not plan.factors:
         return plan.n
-    if path == "reduced":
+    if path in ("reduced", "semi_collapsed"):
         return len(np.unique(np.column_stack([f.index for f in plan.factors]), axis=0))
     return max(f.n_groups for f in plan.factors)
 

@@ -47,7 +47,8 @@ from hierwork.model.spread import row_residual_sd
 from hierwork.plan.plan import ModelPlan
 
 
-def build_model(plan: ModelPlan, centre: bool = True, reduced: bool = False, shift: bool = True) -> pm.Model:
+def build_model(plan: ModelPlan, centre: bool = True, reduced: bool = False, shift: bool = True,
+                likelihood_of=None) -> pm.Model:
     """Build the PyMC model of a plan with every group effect sampled.
 
     Parameters
@@ -67,6 +68,11 @@ def build_model(plan: ModelPlan, centre: bool = True, reduced: bool = False, shi
         :func:`~hierwork.model.paths.shifted_columns` shifted by the mean group
         effects (default; the same posterior). ``False`` samples them as they
         are (the reference the shift is tested against).
+    likelihood_of : callable, optional
+        ``likelihood_of(b, free_cols, parts, extras)`` adds the likelihood
+        instead (the partially collapsed path, :mod:`hierwork.model.semi_collapsed`);
+        ``parts`` are ``(factor, values, shift)`` as for
+        :func:`reduced_normal_likelihood`.
 
     Returns
     -------
@@ -116,7 +122,9 @@ def build_model(plan: ModelPlan, centre: bool = True, reduced: bool = False, shi
                 offset = pt.inc_subtensor(offset[list(f.varying_cols)], values.mean(axis=0))
             b, _ = population_block(plan, centre, offset)
         free = [k for k in range(plan.X.shape[1]) if k not in anchored]
-        if reduced and plan.family.exact_normal:
+        if likelihood_of is not None:
+            likelihood_of(b, free, parts, extras)
+        elif reduced and plan.family.exact_normal:
             reduced_normal_likelihood(plan, b, free, parts, extras.get("residual_sd"))
         else:
             cells = row_cells(plan.X, [f.index for f in plan.factors]) if reduced else None
@@ -170,15 +178,26 @@ def _contrasts_and_mean(name, sd, chol, shape):
     and the mean ``u_bar = L w / sqrt(J)``, ``w ~ N(0, I)``, non-centred; then
     ``u = H' C + 1 u_bar'``, exactly the same distribution.
     """
-    from scipy.linalg import helmert
-
     J, q = shape
     model = pm.modelcontext(None)
     model.add_coord(f"{name}__contrasts", [f"contrast {k + 1}" for k in range(J - 1)])
     C = _centred(f"{name}__contrast", pt.zeros((J - 1, q)), sd, chol, (f"{name}__contrasts", f"{name}__term"),
                  np.zeros((J - 1, q)))
     w = pm.Normal(f"{name}__mean_z", 0.0, 1.0, dims=f"{name}__term")
-    return pt.dot(helmert(J).T, C) + pt.dot(chol, w)[None, :] / np.sqrt(J)
+    return _helmert_transpose_times(C, J) + pt.dot(chol, w)[None, :] / np.sqrt(J)
+
+
+def _helmert_transpose_times(C, J):
+    """``H' C`` for the (J-1, J) Helmert contrasts ``H`` (``scipy.linalg.helmert(J)``) in O(J), not O(J^2).
+
+    Row k of H is ``1/sqrt((k+1)(k+2))`` on columns 0..k and ``-(k+1)/sqrt((k+1)(k+2))``
+    on column k+1; with ``a_k = C_k / sqrt((k+1)(k+2))``, ``(H'C)_j = sum_{k>=j} a_k - j a_{j-1}``.
+    """
+    k = np.arange(J - 1)
+    a = C / np.sqrt((k + 1.0) * (k + 2.0))[:, None]
+    zero = pt.zeros((1, C.shape[1]))
+    return (pt.concatenate([pt.cumsum(a[::-1], axis=0)[::-1], zero], axis=0)
+            - pt.concatenate([zero, (k + 1.0)[:, None] * a], axis=0))
 
 
 def _centred(name, mean, sd, chol, dims, start):
@@ -233,8 +252,24 @@ def reduced_normal_likelihood(plan: ModelPlan, b, free_cols, parts, sigma) -> No
     sigma : scalar tensor or None
         ``residual_sd`` (None with known SDs).
     """
-    cell, cell_groups = cell_index(*[f.index for f, _, _ in parts]) if parts else (
+    stats, coef, effects, _ = cell_terms(plan, b, free_cols, parts)
+    loglik = marginal.reduced_loglik(stats, coef, effects, sigma)
+    pm.Potential("y_reduced", loglik.sum())
+
+
+def cell_terms(plan: ModelPlan, b, free_cols, parts, extra=()):
+    """Cell statistics and the per-cell terms of the reduced likelihood.
+
+    Cells are the combinations of the groups of the ``parts``' factors and of
+    the ``extra`` factors, sorted by the extra factors' groups. Returns ``(stats, coef, effects, cell_groups)``: the
+    coefficients ``b`` on ``free_cols`` (0 elsewhere), the ``(values, cols,
+    cell_group)`` of :func:`~hierwork.model.marginal.reduced_loglik`, and the
+    (cells, factors) group codes, parts' factors first.
+    """
+    factors = list(extra) + [f for f, _, _ in parts]  # cells sorted by the extra factors' groups first
+    cell, cell_groups = cell_index(*[f.index for f in factors]) if factors else (
         np.zeros(plan.n, dtype=np.int64), np.zeros((1, 0), dtype=np.int64))
+    cell_groups = np.roll(cell_groups, -len(extra), axis=1)  # parts' factors first
     stats = cell_stats(plan.y, plan.X, cell, len(cell_groups), plan.known_sd)
     mask = np.zeros(plan.X.shape[1])
     mask[list(free_cols)] = 1.0
@@ -243,5 +278,4 @@ def reduced_normal_likelihood(plan: ModelPlan, b, free_cols, parts, sigma) -> No
         effects.append((values, tuple(f.varying_cols), cell_groups[:, k]))
         if shift is not None:
             effects.append((shift[:, None], (0,), cell_groups[:, k]))
-    loglik = marginal.reduced_loglik(stats, b * mask, effects, sigma)
-    pm.Potential("y_reduced", loglik.sum())
+    return stats, b * mask, effects, cell_groups

@@ -57,10 +57,10 @@ def _shift(plan, path):
 
 def _shift_entry(plan, path) -> dict:
     """plan.json's ``shifted_terms`` (sampled plus their factors' mean effects) and ``shift_reason``."""
-    from hierwork.model.paths import shifted_columns
+    from hierwork.model.paths import sampled_plan, shifted_columns
 
     row = _shift(plan, path)
-    return {} if row is None else {"shifted_terms": [plan.terms[c] for c in shifted_columns(plan)],
+    return {} if row is None else {"shifted_terms": [plan.terms[c] for c in shifted_columns(sampled_plan(plan, path))],
                                    "shift_reason": row[2]}
 
 
@@ -121,12 +121,15 @@ def describe(plan, decisions: list) -> str:
     lines += ["", "decisions"]
     rows = list(decisions)
     shift = _shift(plan, next((choice for what, choice, _ in decisions if what == "path"), None))
-    collapsed = any(what == "path" and choice == "collapsed" for what, choice, _ in decisions)
+    from hierwork.model.paths import sampled_plan
+
+    path = next((choice for what, choice, _ in decisions if what == "path"), None)
+    sampled = set() if path == "collapsed" else {f.name for f in sampled_plan(plan, path).factors}
     for f in plan.factors:
         form = f.parameterisation.replace("_", "-")
-        if collapsed:
+        if f.name not in sampled:
             rows.append((f"{f.name} effects", "integrated out",
-                         f"exact on the collapsed path (if sampled: {form}, {f.reason})"))
+                         f"exact on the {path.replace('_', '-')} path (if sampled: {form}, {f.reason})"))
         else:
             rows.append((f"{f.name} effects", f"sampled {form}", f.reason))
     rows += [shift] if shift else []

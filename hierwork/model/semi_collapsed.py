@@ -1,0 +1,129 @@
+"""The partially collapsed path for normal outcomes with crossed factors.
+
+Crossed factors have no nesting chain to integrate, but one factor can always
+be integrated out exactly given the others: with every other factor's effects
+fixed, the rows of different groups of that factor are independent, and each
+group is a one-factor normal problem in the residual ``y - X t_cell``
+(:func:`hierwork.model.marginal.integrated_group_loglik`). The factor with the
+most groups is integrated (the dimension NUTS sees drops the most, and with
+it the largest funnel); the others are sampled as on the reduced path, in
+their planned forms (:func:`hierwork.model.rowwise.build_model` on the plan
+without that factor). After sampling, :func:`add_group_effects` draws its
+``F__effect`` exactly from its conditional normal for every posterior draw,
+so the run folder holds the same variables as on every other path.
+
+Cost per gradient: O(cells x p^2), cells being the combinations of all
+factors' groups that occur (at most the rows).
+"""
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+from hierwork import runtime  # noqa: F401  (before PyTensor)
+
+import numpy as np
+import pymc as pm
+import xarray as xr
+
+from hierwork.inference import seeds
+from hierwork.model import marginal
+from hierwork.model.blocks import coords_of, factor_scales, group_predictor_term
+from hierwork.model.cells import CellStats
+from hierwork.model.paths import integrated_factor, sampled_plan
+from hierwork.model.rowwise import build_model, cell_terms
+from hierwork.plan.plan import FactorPlan, ModelPlan
+
+
+@dataclass(frozen=True)
+class SemiCollapsedProblem:
+    """A plan split for the semi-collapsed path: the factor integrated out and the plan of the rest."""
+
+    factor: FactorPlan
+    rest: ModelPlan
+
+
+def semi_collapsed_problem(plan: ModelPlan) -> SemiCollapsedProblem:
+    """Split a plan: its integrated factor (:func:`~hierwork.model.paths.integrated_factor`) and the rest."""
+    if not plan.family.exact_normal or not plan.factors:
+        raise ValueError("the semi-collapsed path needs a normal outcome and at least one grouping factor")
+    return SemiCollapsedProblem(integrated_factor(plan), sampled_plan(plan, "semi_collapsed"))
+
+
+def build_semi_collapsed_model(plan: ModelPlan, problem: SemiCollapsedProblem | None = None) -> pm.Model:
+    """PyMC model with the integrated factor's effects integrated out, the others sampled.
+
+    Free variables and priors are those of :func:`hierwork.model.rowwise.build_model`
+    less the integrated factor's effects (its ``F__sd``, ``F__corr`` and
+    ``F__gamma`` stay); ``F__effect`` is added after sampling by
+    :func:`add_group_effects`.
+    """
+    problem = problem or semi_collapsed_problem(plan)
+    f = problem.factor
+
+    def likelihood_of(b, free_cols, parts, extras):
+        model = pm.modelcontext(None)
+        for name, values in coords_of(plan).items():
+            if name not in model.coords:
+                model.add_coord(name, values)
+        chol = factor_scales(f, plan)[1]
+        shift = group_predictor_term(f, plan)
+        stats, coef, effects, groups = cell_terms(problem.rest, b, free_cols, parts, extra=(f,))
+        if shift is not None:
+            effects.append((shift[:, None], (0,), groups[:, -1]))
+        integrated = marginal.Integrated(tuple(f.varying_cols), groups[:, -1], f.n_groups)
+        pm.Potential("y_integrated", marginal.integrated_group_loglik(stats, coef, effects, integrated, chol,
+                                                                extras.get("residual_sd")).sum())
+
+    return build_model(problem.rest, reduced=True, likelihood_of=likelihood_of)
+
+
+def add_group_effects(idata, plan: ModelPlan, seed, problem: SemiCollapsedProblem | None = None):
+    """Draw the integrated factor's ``F__effect`` exactly for each posterior draw, in place.
+
+    Parameters
+    ----------
+    idata : arviz.InferenceData
+        Posterior of :func:`build_semi_collapsed_model` (``b``, every other factor's
+        ``F__effect``, the SDs, ``F__gamma``...).
+    plan : ModelPlan
+    seed : int
+        The run's seed; the draws use their own stream derived from it.
+    problem : SemiCollapsedProblem, optional
+
+    Returns
+    -------
+    arviz.InferenceData (the same object).
+    """
+    problem = problem or semi_collapsed_problem(plan)
+    f, post = problem.factor, idata.posterior
+    n_chain, n_draw = post.sizes["chain"], post.sizes["draw"]
+
+    def flat(name):
+        values = post[name].values
+        return values.reshape((n_chain * n_draw,) + values.shape[2:])
+
+    stats, groups, effects = _draw_terms(plan, problem, flat)
+    if f.predictors:
+        effects.append(((flat(f"{f.name}__gamma") @ f.W.T)[:, :, None], (0,), groups[:, -1]))
+    sd = flat(f"{f.name}__sd")
+    chols = sd[:, :, None] if len(f.varying) == 1 else sd[:, :, None] * np.linalg.cholesky(flat(f"{f.name}__corr"))
+    u = marginal.draw_integrated_effects(stats, flat("b"), effects,
+                                      marginal.Integrated(tuple(f.varying_cols), groups[:, -1], f.n_groups),
+                                      chols, None if plan.known_sd is not None else flat("residual_sd"),
+                                      rng=seeds.rng(seed, "group_effects"))
+    post[f"{f.name}__effect"] = xr.DataArray(
+        u.reshape(n_chain, n_draw, f.n_groups, len(f.varying)),
+        coords={"chain": post.chain, "draw": post.draw, f.name: list(f.levels), f"{f.name}__term": list(f.varying)},
+        dims=("chain", "draw", f.name, f"{f.name}__term"))
+    return idata
+
+
+def _draw_terms(plan, problem, flat) -> tuple[CellStats, np.ndarray, list]:
+    """Cell statistics and the sampled factors' per-draw effect terms (effects and group predictors)."""
+    parts = [(g, flat(f"{g.name}__effect"), None) for g in problem.rest.factors]
+    stats, _, effects, groups = cell_terms(problem.rest, np.zeros(plan.X.shape[1]), [], parts,
+                                           extra=(problem.factor,))
+    for k, g in enumerate(problem.rest.factors):
+        if g.predictors:
+            effects.append(((flat(f"{g.name}__gamma") @ g.W.T)[:, :, None], (0,), groups[:, k]))
+    return stats, groups, effects
