@@ -17,7 +17,6 @@ from __future__ import annotations
 import argparse
 import json
 import os
-import subprocess
 import sys
 import tempfile
 import time
@@ -69,26 +68,8 @@ def write_problem(folder: Path) -> Path:
 
 
 def run_hierwork(folder: Path) -> dict:
-    """The whole ``hierwork fit`` command, timed from the shell."""
-    import arviz as az
-
-    import hierwork
-
-    spec = write_problem(folder)
-    start = time.perf_counter()
-    with pm.Model() as model:
-        mu = prior_rv("b0", [priors["intercept"]]) + prior_rv("b1", [priors["weight_kg"]]) * x
-        for name, n in (("courier", N_COURIERS), ("address", N_ADDRESSES), ("region", N_REGIONS)):
-            tau = prior_rv(f"{name}_sd", [priors[f"{name}.sd"]])
-            u = pm.Deterministic(f"{name}_u", tau * pm.Normal(f"{name}_z", 0.0, 1.0, shape=n))
-            mu = mu + u[codes[name]]
-        pm.Normal("y", mu, prior_rv("sigma", [priors["residual_sd"]]), observed=y)
-    wall = time.perf_counter() - start
-    run = hierwork.Run.load(folder / "run")
-    idata = az.from_netcdf(str(folder / "run" / "posterior.nc"))
-    prov = run.provenance
-    return {**bench_scale.summarise(idata, ["b", "depot__sd", "depot__effect"]), "wall": wall,
-            "gate": bool(run.passed), "note": f"{prov['path']} / {prov['engine']}"}
+    """The whole ``hierwork fit`` command (:func:`bench_scale.time_fit`)."""
+    return bench_scale.time_fit(write_problem(folder), folder, ["b", "depot__sd", "depot__effect"])
 
 
 def run_handwritten(folder: Path) -> dict:

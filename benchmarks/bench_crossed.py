@@ -18,7 +18,6 @@ from __future__ import annotations
 import argparse
 import json
 import os
-import subprocess
 import sys
 import tempfile
 import time
@@ -77,24 +76,9 @@ def write_problem(folder: Path) -> Path:
 
 
 def run_hierwork(folder: Path) -> dict:
-    """The whole ``hierwork fit`` command, timed from the shell."""
-    import arviz as az
-
-    import hierwork
-
-    spec = write_problem(folder)
-    start = time.perf_counter()
-    done = subprocess.run([sys.executable, "-m", "hierwork", "fit", str(spec), "--out", str(folder / "run"),
-                           "--quiet"], stdout=subprocess.DEVNULL)
-    if done.returncode not in (0, 3):  # 3: the run folder is written, the gate failed
-        raise RuntimeError(f"hierwork fit exited {done.returncode}")
-    wall = time.perf_counter() - start
-    run = hierwork.Run.load(folder / "run")
-    idata = az.from_netcdf(str(folder / "run" / "posterior.nc"))
+    """The whole ``hierwork fit`` command (:func:`bench_scale.time_fit`)."""
     names = ["b", "residual_sd"] + [f"{f}__{v}" for f in ("courier", "address", "region") for v in ("sd", "effect")]
-    prov = run.provenance
-    return {**bench_scale.summarise(idata, names), "wall": wall, "gate": bool(run.passed),
-            "note": f"{prov['path']} / {prov['engine']}"}
+    return bench_scale.time_fit(write_problem(folder), folder, names)
 
 
 def run_handwritten(folder: Path) -> dict:
