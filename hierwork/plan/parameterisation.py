@@ -294,5 +294,5 @@ def choose(requested: str, judged: list) -> tuple[str, str, np.ndarray | None]:
               f"change of the log conditional SD across the 90% interval of tau: {costs}")
     if form == "partial":
         return "partial", f"{reason}; groups disagree, per-group {weights_text(j.weights)}: partial", j.weights
-    return form, (f"{reason}; groups agree (per-group weights would gain {j.costs['common'] - j.costs['partial']:.2g} "
+    return form, (f"{reason}; groups agree (per-group weights would gain {max(j.costs['common'] - j.costs['partial'], 0.0):.2f} "
                   f"< {PARTIAL_GAIN:g}): {form.replace('_', '-')}"), None
