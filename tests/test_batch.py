@@ -159,7 +159,7 @@ def test_dry_run_validates_each_variant_like_fit(tmp_path, capsys):
     assert stdout.splitlines()[2] == (
         "  crop.typo  [cannot run: override groups.line.parameterisation='centered': "
         "groups.line.parameterisation: 'centered' is not allowed "
-        "(did you mean 'centred'? valid: 'auto', 'centred', 'non_centred')]")
+        "(did you mean 'centred'? valid: 'auto', 'centred', 'non_centred', 'partial')]")
 
 
 def test_batch_usage_errors_exit_2_with_one_line(tmp_path, capsys):
