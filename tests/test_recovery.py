@@ -33,13 +33,15 @@ SAMPLING = {"sampling.chains": 2, "sampling.warmup": 400, "sampling.draws": 400,
 
 
 def _fit(folder, frame, outcome, groups, path):
-    """Fit a spec through the public API; returns the run."""
+    """Fit a spec through the public API on ``path`` (the best one, or semi_collapsed, which is only taken when
+    asked for); returns the run."""
     frame.to_csv(folder / "data.csv", index=False)
     doc = {"format": "hierwork/1", "name": "recovery", "data": "data.csv", "outcome": outcome,
            "predictors": ["x"], "groups": groups,
            "estimates": {"at": {"x": "zero"}}}  # group intercepts at x = 0, where the truth is stated
     (folder / "spec.yaml").write_text(yaml.safe_dump(doc))
-    run = hierwork.fit(folder / "spec.yaml", out=folder / "run", overrides=SAMPLING, progress=False)
+    run = hierwork.fit(folder / "spec.yaml", out=folder / "run", overrides={**SAMPLING, "sampling.path": path},
+                       progress=False)
     assert run.provenance["path"] == path
     return run
 

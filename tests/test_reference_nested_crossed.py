@@ -144,8 +144,8 @@ def machines(tmp_path_factory):
 
 @pytest.mark.xfail(strict=False, reason=(
     "known open (issue 16): at 2 chains x 1,000 draws this fit is borderline on every form tried "
-    "(seed 92: semi-collapsed path 1 divergence and tail ESS 227 on worker.sd; reduced path tail ESS 366; "
-    "worker non-centred bulk ESS 370; seed 93 passes); the gate's advice, more draws, is what a user gets"))
+    "(seed 92, auto's reduced path: tail ESS 366 on worker.sd; semi-collapsed path: 1 divergence; "
+    "worker non-centred: bulk ESS 370); the gate's advice, more draws, is what a user gets"))
 def test_machines_passes_gate(machines):
     run, _ = machines
     assert run.passed, run.diagnostics

@@ -60,7 +60,7 @@ def _dense(plan, f, b, sampled, gamma, chol, sigma):
 @pytest.mark.parametrize("known_sd", [False, True])
 def test_semi_collapsed_likelihood_equals_dense_marginal(tmp_path, known_sd):
     plan = _crossed(tmp_path, known_sd=known_sd)
-    assert paths.best_path(plan)[0] == "semi_collapsed"
+    assert paths.semi_collapsed_applies(plan)
     problem = semi_collapsed.semi_collapsed_problem(plan)
     f = problem.factor
     assert f.name == "courier"
@@ -110,17 +110,18 @@ def test_semi_collapsed_draws_follow_dense_conditional(tmp_path):
 def test_path_choice_and_requests(tmp_path):
     plan = _crossed(tmp_path)
     path, reason = paths.best_path(plan)
-    assert path == "semi_collapsed" and "courier" in reason
+    assert path == "reduced" and "semi_collapsed integrates courier out" in reason  # auto: not yet the default
     assert paths.integrated_factor(plan).name == "courier"
     assert [g.name for g in paths.sampled_plan(plan, "semi_collapsed").factors] == ["address", "region"]
     assert paths.sampled_plan(plan, "reduced") is plan
-    text = hierwork.check(tmp_path / "spec.yaml").text()
-    lines = {line.split()[0]: line for line in text.splitlines() if " effects " in line}
+    asked = hierwork.check(tmp_path / "spec.yaml", {"sampling.path": "semi_collapsed"})
+    assert paths.resolve_path(asked.plan.spec, plan) == ("semi_collapsed", "set in the spec")
+    lines = {line.split()[0]: line for line in asked.text().splitlines() if " effects " in line}
     assert "integrated out: exact on the semi-collapsed path" in lines["courier"]
     assert "sampled" in lines["address"] and "sampled" in lines["region"]
     # a slower exact path may be asked for; semi_collapsed on a non-normal or factor-less model may not
-    spec = hierwork.load_spec(tmp_path / "spec.yaml", {"sampling.path": "reduced"})
-    assert paths.resolve_path(spec, plan) == ("reduced", "set in the spec")
+    spec = hierwork.load_spec(tmp_path / "spec.yaml", {"sampling.path": "plain"})
+    assert paths.resolve_path(spec, plan) == ("plain", "set in the spec")
     frame = pd.DataFrame({"y": np.arange(12) % 4, "a": list("uvw") * 4, "c": list("pq") * 6})
     with pytest.raises(hierwork.errors.SpecError, match="path 'semi_collapsed' does not apply"):
         _plan(tmp_path, frame, {"outcome": {"column": "y", "family": "poisson"},

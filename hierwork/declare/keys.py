@@ -122,7 +122,8 @@ SPEC_KEYS = {
         "path": Key("choice", "Likelihood form: collapsed (normal, effects integrated out), semi_collapsed (normal, "
                     "the factor with most groups integrated out, the others sampled), reduced (per "
                     "cell: sufficient statistics for normal, summed identical rows for bernoulli, binomial "
-                    "and poisson), or per-row; 'auto' takes the fastest exact one that applies.",
+                    "and poisson), or per-row; 'auto' takes the fastest exact one that applies "
+                    "(semi_collapsed only when asked for: docs/fast-path.md).",
                     "auto", choices=("auto", "collapsed", "semi_collapsed", "reduced", "plain")),
     }),
     "gate": Key("section", "Convergence checks that must pass before results count.", {}, fields={

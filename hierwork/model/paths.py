@@ -3,13 +3,15 @@
 * ``collapsed``: normal outcome whose factors form one nesting chain (one
   factor, or plot within farm within region ...): every level's effects are
   integrated out (:mod:`hierwork.model.collapsed`);
-* ``semi_collapsed``: normal outcome with crossed factors: the factor with the most
-  groups is integrated out exactly given the others' effects, which are
-  sampled; likelihood from per-cell sufficient statistics, O(cells)
-  (:mod:`hierwork.model.semi_collapsed`);
-* ``reduced``: normal outcome without factors, or when asked for: the group
+* ``reduced``: normal outcome with crossed factors (or none): the group
   effects are sampled, the likelihood evaluated from per-cell sufficient
   statistics, exact and O(cells) (:func:`hierwork.model.rowwise.reduced_normal_likelihood`);
+* ``semi_collapsed``, only when the spec asks for it: normal outcome with
+  factors: the factor with the most groups is integrated out exactly given the
+  others' effects, which are sampled (:mod:`hierwork.model.semi_collapsed`).
+  Cheaper per gradient on large crossed designs, but on the crossed designs
+  measured so far (24 x 6 plates, machines, 73,000 rows) it mixed worse than
+  ``reduced`` (R-hat 1.013, a divergence), so ``auto`` does not take it yet;
 * ``reduced`` also for counts and proportions (bernoulli, binomial, poisson)
   when rows share predictors and group memberships: each such cell is one
   binomial (successes and trials summed) or Poisson (counts and exposures
@@ -17,8 +19,8 @@
   (:meth:`~hierwork.plan.families.base.Family.aggregate`);
 * ``plain``: every other case, the per-row model.
 
-The spec's ``sampling.path`` may ask for a slower exact path than the best one,
-never a faster one that does not apply. Light: NumPy only, so ``check`` reads
+The spec's ``sampling.path`` may ask for a slower exact path than the best one
+(or ``semi_collapsed`` where it applies), never one that does not apply. Light: NumPy only, so ``check`` reads
 the decision without importing PyMC.
 """
 from __future__ import annotations
@@ -66,9 +68,15 @@ def best_path(plan) -> tuple[str, str]:
         return "collapsed", (f"normal outcome with {what}: group effects integrated out exactly, "
                              "then drawn from their conditional normal")
     f = integrated_factor(plan)
-    return "semi_collapsed", (f"normal outcome with crossed factors: {f.name} ({f.n_groups:,} groups, the most) "
-                       "integrated out exactly given the other effects, which are sampled; likelihood from "
-                       "per-cell sufficient statistics")
+    return "reduced", ("normal outcome with crossed factors: likelihood from per-cell sufficient statistics, "
+                       f"group effects sampled (sampling.path: semi_collapsed integrates {f.name} out instead: "
+                       "cheaper per gradient on large designs, but it mixed worse on the crossed designs "
+                       "measured so far, benchmarks/RESULTS.md)")
+
+
+def semi_collapsed_applies(plan) -> bool:
+    """Whether one factor can be integrated out exactly: a normal outcome, a grouping factor, one residual SD."""
+    return bool(plan.family.exact_normal and plan.factors and all(f.spread != "varying" for f in plan.factors))
 
 
 def integrated_factor(plan):
@@ -137,6 +145,8 @@ def resolve_path(spec, plan) -> tuple[str, str]:
     requested = spec.sampling["path"]
     if requested in ("auto", best):
         return best, reason
+    if requested == "semi_collapsed" and semi_collapsed_applies(plan):
+        return requested, "set in the spec"
     if ORDER.index(requested) < ORDER.index(best):
         raise SpecError(f"path {requested!r} does not apply to this model: {reason}",
                         where=spec.where("sampling.path"), hint=f"use 'auto' or {best!r}")
