@@ -14,11 +14,8 @@ Usage::
 """
 from __future__ import annotations
 
-import argparse
-import json
 import os
 import sys
-import tempfile
 import time
 from pathlib import Path
 
@@ -32,7 +29,6 @@ N_DEPOTS, N_ROWS = 1_000, 1_000_000
 VEHICLES = {"van": 0.0, "bike": -0.4, "truck": 0.3}
 SLOTS = {"morning": 0.0, "midday": 0.2, "afternoon": 0.5, "evening": 0.9}
 TRUE = {"intercept": -1.5, "depot_sd": 0.5}
-METHODS = ("hierwork", "pymc-nc")
 
 
 def make_problem(seed: int = SEED):
@@ -97,30 +93,9 @@ def run_handwritten(folder: Path) -> dict:
             "note": "non-centred, per row"}
 
 
-def one(method: str) -> dict:
-    with tempfile.TemporaryDirectory() as tmp:
-        return run_hierwork(Path(tmp)) if method == "hierwork" else run_handwritten(Path(tmp))
-
-
 def main(argv=None) -> None:
-    parser = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
-    parser.add_argument("--methods", nargs="+", default=list(METHODS), choices=METHODS)
-    parser.add_argument("--cap", type=float, default=1800.0, help="seconds per fit (default 1800)")
-    parser.add_argument("--markdown", type=Path, help="also write the table and machine line here")
-    parser.add_argument("--one", help=argparse.SUPPRESS)
-    args = parser.parse_args(argv)
-    if args.one:
-        print(json.dumps(one(args.one)))
-        return
-    results = []
-    for method in args.methods:
-        results.append(bench_scale.measure(method, "bernoulli", args.cap, script=__file__, argv=["--one", method]))
-        print(f"bernoulli {method}: {json.dumps(results[-1])}", file=sys.stderr, flush=True)
-    text = (f"Machine: {bench_scale.machine()}\nChains {bench_scale.CHAINS} x ({bench_scale.WARMUP} warmup + "
-            f"{bench_scale.DRAWS} draws), seed {SEED}.\n\n{bench_scale.table(results)}")
-    print(text)
-    if args.markdown:
-        args.markdown.write_text(text + "\n", encoding="utf-8")
+    bench_scale.sibling_main(__doc__, "bernoulli", SEED, __file__,
+                             {"hierwork": run_hierwork, "pymc-nc": run_handwritten}, argv)
 
 
 if __name__ == "__main__":

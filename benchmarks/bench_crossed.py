@@ -15,11 +15,8 @@ Usage::
 """
 from __future__ import annotations
 
-import argparse
-import json
 import os
 import sys
-import tempfile
 import time
 from pathlib import Path
 
@@ -32,7 +29,6 @@ SEED = 20261203
 N_COURIERS, N_ADDRESSES, N_REGIONS, N_ROWS = 3_000, 1_100, 14, 73_000
 TRUE = {"intercept": 38.0, "weight_kg": 0.8, "courier_sd": 5.0, "address_sd": 4.0, "region_sd": 3.0,
         "residual_sd": 9.0}
-METHODS = ("hierwork", "pymc-nc")
 
 
 def make_problem(seed: int = SEED):
@@ -107,30 +103,9 @@ def run_handwritten(folder: Path) -> dict:
     return {**bench_scale.summarise(idata, names), "wall": wall, "gate": None, "note": "non-centred, per row"}
 
 
-def one(method: str) -> dict:
-    with tempfile.TemporaryDirectory() as tmp:
-        return run_hierwork(Path(tmp)) if method == "hierwork" else run_handwritten(Path(tmp))
-
-
 def main(argv=None) -> None:
-    parser = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
-    parser.add_argument("--methods", nargs="+", default=list(METHODS), choices=METHODS)
-    parser.add_argument("--cap", type=float, default=1800.0, help="seconds per fit (default 1800)")
-    parser.add_argument("--markdown", type=Path, help="also write the table and machine line here")
-    parser.add_argument("--one", help=argparse.SUPPRESS)
-    args = parser.parse_args(argv)
-    if args.one:
-        print(json.dumps(one(args.one)))
-        return
-    results = []
-    for method in args.methods:
-        results.append(bench_scale.measure(method, "crossed", args.cap, script=__file__, argv=["--one", method]))
-        print(f"crossed {method}: {json.dumps(results[-1])}", file=sys.stderr, flush=True)
-    text = (f"Machine: {bench_scale.machine()}\nChains {bench_scale.CHAINS} x ({bench_scale.WARMUP} warmup + "
-            f"{bench_scale.DRAWS} draws), seed {SEED}.\n\n{bench_scale.table(results)}")
-    print(text)
-    if args.markdown:
-        args.markdown.write_text(text + "\n", encoding="utf-8")
+    bench_scale.sibling_main(__doc__, "crossed", SEED, __file__,
+                             {"hierwork": run_hierwork, "pymc-nc": run_handwritten}, argv)
 
 
 if __name__ == "__main__":

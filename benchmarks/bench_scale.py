@@ -214,6 +214,30 @@ def measure(method: str, size: str, cap: float, script: str = __file__, argv: li
     return result
 
 
+def sibling_main(doc: str, size: str, seed: int, script: str, methods: dict, argv=None) -> None:
+    """The command line of a one-problem benchmark script: each method measured in its own child process
+    (``--one METHOD``, killed at ``--cap``), then the table. ``methods``: name -> function of a folder."""
+    parser = argparse.ArgumentParser(description=doc.split("\n\n")[0])
+    parser.add_argument("--methods", nargs="+", default=list(methods), choices=list(methods))
+    parser.add_argument("--cap", type=float, default=1800.0, help="seconds per fit (default 1800)")
+    parser.add_argument("--markdown", type=Path, help="also write the table and machine line here")
+    parser.add_argument("--one", help=argparse.SUPPRESS)
+    args = parser.parse_args(argv)
+    if args.one:
+        with tempfile.TemporaryDirectory() as tmp:
+            print(json.dumps(methods[args.one](Path(tmp))))
+        return
+    results = []
+    for method in args.methods:
+        results.append(measure(method, size, args.cap, script=script, argv=["--one", method]))
+        print(f"{size} {method}: {json.dumps(results[-1])}", file=sys.stderr, flush=True)
+    text = (f"Machine: {machine()}\nChains {CHAINS} x ({WARMUP} warmup + {DRAWS} draws), seed {seed}.\n\n"
+            f"{table(results)}")
+    print(text)
+    if args.markdown:
+        args.markdown.write_text(text + "\n", encoding="utf-8")
+
+
 def machine() -> str:
     import psutil
 
