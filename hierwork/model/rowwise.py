@@ -133,7 +133,8 @@ def build_model(plan: ModelPlan, centre: bool = True, reduced: bool = False, shi
             eta = pt.dot(X[:, free], b[free]) if free else pt.zeros(X.shape[0])
             for f, values, shift in parts:
                 index = f.index[take]
-                eta = eta + (values[index] * X[:, list(f.varying_cols)]).sum(axis=1)
+                for k, col in enumerate(f.varying_cols):  # vector gathers: their gradient runs in C
+                    eta = eta + values[:, k][index] * X[:, col]
                 if shift is not None:
                     eta = eta + shift[index]
             if cells is None:
