@@ -25,7 +25,7 @@ the decision without importing PyMC.
 """
 from __future__ import annotations
 
-from dataclasses import replace
+from dataclasses import dataclass, replace
 
 import numpy as np
 
@@ -169,24 +169,101 @@ def likelihood_size(plan, path: str) -> int:
     if path == "reduced" and not plan.family.exact_normal:
         return count_cells(plan)
     if not plan.factors:
-        return plan.n
+        return 1 if path == "reduced" else plan.n
     if path in ("reduced", "semi_collapsed"):
         return len(np.unique(np.column_stack([f.index for f in plan.factors]), axis=0))
     return max(f.n_groups for f in plan.factors)
 
 
-# Above this many likelihood terms x columns, nutpie's faster gradient loop is
-# expected to outweigh its longer compile. A starting point, not yet tuned by
-# measurement (benchmarks/bench_scale.py can compare the engines).
-NUTPIE_FROM_CELLS = 200_000
+def sampled_dimension(plan, path: str) -> int:
+    """Parameters NUTS samples on a path: population coefficients and every sampled group effect (SDs aside)."""
+    factors = () if path == "collapsed" else sampled_plan(plan, path).factors
+    return plan.X.shape[1] + sum(f.n_groups * len(f.varying) for f in factors)
 
 
-def choose_engine(requested: str, cells: int) -> tuple[str, str]:
-    """Return (engine, reason) for a requested engine and a problem size."""
+def gradient_work(plan, path: str) -> int:
+    """Work of one log-density gradient on a path, in element operations up to a constant factor.
+
+    Each likelihood term (:func:`likelihood_size`) costs its coefficients
+    (population columns plus every factor's varying terms), or their square
+    where the term is a cell of normal sufficient statistics (its quadratic
+    form); each sampled parameter costs one more. Measured against the
+    gradient's time in ``benchmarks/bench_engine.py``.
+    """
+    r = plan.X.shape[1] + sum(len(f.varying) for f in plan.factors)
+    per_term = r * r if plan.family.exact_normal and path != "plain" else r
+    return likelihood_size(plan, path) * per_term + sampled_dimension(plan, path)
+
+
+@dataclass(frozen=True)
+class EngineCost:
+    """What one NUTS engine costs on this kind of machine (``benchmarks/bench_engine.py``, RESULTS.md).
+
+    ``compile_s``: seconds to compile a model, compile cache warm; ``step_s``:
+    the sampler's own seconds per leapfrog step; ``work_s``: seconds per unit
+    of :func:`gradient_work` in one gradient.
+    """
+
+    compile_s: float
+    step_s: float
+    work_s: float
+
+    def seconds(self, work: int, steps: float) -> float:
+        return self.compile_s + steps * (self.step_s + work * self.work_s)
+
+
+#: Measured on 2 cores (benchmarks/RESULTS.md, "Engine choice"); nutpie's numba compile is not
+#: cached between processes, PyTensor's C compile is.
+COMPILE_PYMC, STEP_PYMC, WORK_PYMC = 11.0, 1.8e-3, 22e-9
+COMPILE_NUTPIE, STEP_NUTPIE, WORK_NUTPIE = 25.0, 0.3e-3, 6.5e-9
+#: Leapfrog steps per iteration at one dimension (:func:`leapfrog_steps`).
+STEPS_AT_1 = 4.8
+ENGINE_COSTS = {"pymc": EngineCost(compile_s=COMPILE_PYMC, step_s=STEP_PYMC, work_s=WORK_PYMC),
+                "nutpie": EngineCost(compile_s=COMPILE_NUTPIE, step_s=STEP_NUTPIE, work_s=WORK_NUTPIE)}
+
+
+def leapfrog_steps(dimension: int) -> float:
+    """Expected leapfrog steps per NUTS iteration in ``dimension`` parameters: ``STEPS_AT_1 * d^(1/4)``.
+
+    The optimal step size of HMC shrinks as ``d^(-1/4)`` (Beskos, Pillai,
+    Roberts, Sanz-Serna and Stuart 2013, Bernoulli 19, 1501-1534; quoted from
+    memory), so the path length in steps grows as ``d^(1/4)``; the factor is
+    fitted to the steps measured in ``benchmarks/bench_engine.py``.
+    """
+    return STEPS_AT_1 * max(dimension, 1) ** 0.25
+
+
+def choose_engine(requested: str, work: int, dimension: int = 1, iterations: int = 2000,
+                  rounds: int = 1) -> tuple[str, str]:
+    """The NUTS engine predicted to sample fastest, and why: ``(engine, reason)``.
+
+    Parameters
+    ----------
+    requested : {"auto", "pymc", "nutpie"}
+        The spec's ``sampling.engine``; anything but ``auto`` is kept.
+    work : int
+        :func:`gradient_work` of the model.
+    dimension : int
+        :func:`sampled_dimension` (sets the expected leapfrog steps).
+    iterations : int
+        Warm-up plus draws per chain.
+    rounds : int
+        Chains run one after another per core (chains / cores, rounded up).
+    """
     if requested != "auto":
         return requested, "set in the spec or on the command line"
-    if cells > NUTPIE_FROM_CELLS:
-        return "nutpie", (f"{cells:,} likelihood terms x design columns > {NUTPIE_FROM_CELLS:,}: "
-                          "gradient time dominates")
-    return "pymc", (f"{cells:,} likelihood terms x design columns <= {NUTPIE_FROM_CELLS:,}: "
-                    "compile time dominates")
+    steps = rounds * iterations * leapfrog_steps(dimension)
+    secs = {e: cost.seconds(work, steps) for e, cost in ENGINE_COSTS.items()}
+    engine = min(secs, key=secs.get)
+    other = "pymc" if engine == "nutpie" else "nutpie"
+    return engine, (f"predicted sampling {_secs(secs[engine])} on {engine} against {_secs(secs[other])} on "
+                    f"{other}: {steps / 1e3:,.0f}k leapfrog steps of a {_work(work)}-operation gradient "
+                    f"(compile included)")
+
+
+def _secs(s: float) -> str:
+    return f"{s:.0f} s" if s < 600 else f"{s / 60:.0f} min"
+
+
+def _work(w: int) -> str:
+    return f"{w / 1e6:.1f}M" if w >= 1e6 else f"{w / 1e3:.0f}k" if w >= 1e3 else str(w)
