@@ -7,29 +7,27 @@ asked), late deliveries and parcel counts with two categorical predictors
 (bernoulli and poisson rows that merge into cells: ``reduced``), and parcel
 counts against a numeric predictor (poisson, no two rows alike: ``plain``).
 
-For every problem, in child processes:
+For every problem, in two fresh child processes one after the other (the
+second sees whatever the first cached on disk): building the PyMC model;
+compiling it for PyMC's NUTS (PyTensor's C backend) and timing one log
+density + gradient evaluation (median of repeats) and a short one-chain run
+(300 iterations, warm-up included), so the cost of one leapfrog step with the
+sampler's own work; then the same for nutpie (PyTensor's numba backend, then
+numba's JIT). With ``--again`` the nutpie compile is repeated in the first
+process (an in-process cache?); with ``--fits`` the whole ``hierwork fit``
+command is also timed on each engine (2 chains x (1,000 + 1,000)).
 
-* **parts**: building the PyMC model; compiling its log density and
-  gradient with PyTensor's C backend (what PyMC's NUTS runs) and timing one
-  evaluation (median of repeats); compiling it for nutpie (PyTensor's numba
-  backend, then numba's JIT) and timing one evaluation of that; with
-  ``--again``, the same nutpie compile a second time in the same process;
-* **fit**: the whole ``hierwork fit`` command on each engine
-  (``--engine pymc`` / ``--engine nutpie``), after the parts have filled the
-  compile caches: wall time, the sampling time (compile included, from
-  provenance), the leapfrog steps taken (every gradient NUTS evaluated), and
-  the gate;
-* **parts** again, in a fresh process after the fits: the compile times a
-  user's second run sees (whatever the first runs cached on disk).
-
-From these: each engine's cost per leapfrog step while sampling (sampling
-time less compile, over the steps of the slowest chain) next to its bare
-gradient, and so its per-step overhead.
+Times are CPU seconds of the process, its threads and the compiler it runs:
+on a machine shared with other work they stay what an idle machine's wall
+clock would show for one chain, where wall times do not. The gradient work
+of :func:`hierwork.model.paths.gradient_work` is printed beside the measured
+gradient, and the engine a 2 x 2,000-iteration run would sample faster on,
+from the measured compile, step cost and steps.
 
 Usage::
 
     nice -n 10 python benchmarks/bench_engine.py                 # every problem
-    nice -n 10 python benchmarks/bench_engine.py --problems crossed-S semi-S --json out.json
+    nice -n 10 python benchmarks/bench_engine.py --problems crossed-S semi-S --fits pymc nutpie --json out.json
 """
 from __future__ import annotations
 
@@ -112,49 +110,81 @@ def write_problem(name: str, folder: Path) -> Path:
     return folder / "spec.yaml"
 
 
+def _cpu() -> float:
+    """CPU seconds of this process (every thread) and of its finished children (the C compiler)."""
+    import resource
+
+    own, kids = resource.getrusage(resource.RUSAGE_SELF), resource.getrusage(resource.RUSAGE_CHILDREN)
+    return own.ru_utime + own.ru_stime + kids.ru_utime + kids.ru_stime
+
+
+def _timed(fn, *args, **kwargs):
+    """``(result, wall seconds, CPU seconds)`` of one call."""
+    w, c = time.perf_counter(), _cpu()
+    out = fn(*args, **kwargs)
+    return out, time.perf_counter() - w, _cpu() - c
+
+
 def _per_call(fn, x, budget: float = 1.0) -> float:
-    """Median seconds of one call of ``fn(x)`` over repeats within about ``budget`` seconds."""
+    """Median CPU seconds (this thread) of one call of ``fn(x)`` over repeats within about ``budget`` seconds."""
     fn(x)
     times = []
     start = time.perf_counter()
     while len(times) < 5 or (time.perf_counter() - start < budget and len(times) < 2000):
-        t = time.perf_counter()
+        t = time.thread_time()
         fn(x)
-        times.append(time.perf_counter() - t)
+        times.append(time.thread_time() - t)
     return float(np.median(times))
 
 
-def parts(spec: Path, again: bool = False) -> dict:
-    """Build, compile and time one gradient of a problem's model on each engine (in this process)."""
+def _steps(idata) -> int:
+    """Leapfrog steps of every iteration kept (warm-up included when kept)."""
+    groups = [g for g in ("warmup_sample_stats", "sample_stats") if g in idata.groups()]
+    return int(sum(np.nansum(idata[g]["n_steps"].values) for g in groups))
+
+
+def parts(spec: Path, again: bool = False, iterations: int = 300) -> dict:
+    """Build, compile, time one gradient and a short one-chain run of a problem's model on each engine.
+
+    Times are CPU seconds (this process, its threads and the compiler it runs), so they do not depend on
+    what else the shared machine runs; wall seconds of the compiles are kept beside them.
+    """
     t0 = time.perf_counter()
     import nutpie
+    import pymc as pm
 
     import hierwork
+    from hierwork.model.paths import gradient_work
     from hierwork.pipeline import path_model
 
     imports = time.perf_counter() - t0
     report = hierwork.check(spec)
-    t = time.perf_counter()
-    model, _ = path_model(report.plan, report.path)
-    build = time.perf_counter() - t
-    t = time.perf_counter()
+    (model, _), build, _ = _timed(path_model, report.plan, report.path)
+    x0 = np.concatenate([np.ravel(v) for v in model.initial_point().values()])
+    with model:
+        step, compile_c_wall, compile_c = _timed(pm.NUTS, target_accept=0.9)
     fn = model.logp_dlogp_function(ravel_inputs=True)
     fn.set_extra_values({})
-    compile_c = time.perf_counter() - t
-    x0 = np.concatenate([np.ravel(v) for v in model.initial_point().values()])
     grad_c = _per_call(fn, x0)
-    t = time.perf_counter()
-    compiled = nutpie.compile_pymc_model(model)
-    compile_nutpie = time.perf_counter() - t
+    half = iterations // 2
+    trace, _, run_c = _timed(pm.sample, draws=half, tune=half, chains=1, cores=1, step=step, model=model,
+                             random_seed=SEED, progressbar=False, discard_tuned_samples=False,
+                             compute_convergence_checks=False)
+    compiled, compile_nutpie_wall, compile_nutpie = _timed(nutpie.compile_pymc_model, model)
     grad_nutpie = _per_call(compiled.logp_func, x0)
+    draws, _, run_nutpie = _timed(nutpie.sample, compiled, draws=half, tune=half, chains=1, cores=1, seed=SEED,
+                                  progress_bar=False)
     compile_nutpie_again = None
     if again:
-        t = time.perf_counter()
-        nutpie.compile_pymc_model(path_model(report.plan, report.path)[0])
-        compile_nutpie_again = time.perf_counter() - t
-    return {"path": report.path, "dim": int(x0.size), "rows": int(report.plan.n), "imports": imports,
-            "build": build, "compile_c": compile_c, "grad_c": grad_c, "compile_nutpie": compile_nutpie,
-            "compile_nutpie_again": compile_nutpie_again, "grad_nutpie": grad_nutpie}
+        compile_nutpie_again = _timed(nutpie.compile_pymc_model, path_model(report.plan, report.path)[0])[2]
+    steps_c, steps_nutpie = _steps(trace), _steps(draws)
+    return {"path": report.path, "dim": int(x0.size), "work": gradient_work(report.plan, report.path), "rows": int(report.plan.n), "imports": imports,
+            "build": build, "compile_c": compile_c, "compile_c_wall": compile_c_wall, "grad_c": grad_c,
+            "step_c": run_c / steps_c, "steps_per_iteration_c": steps_c / iterations,
+            "compile_nutpie": compile_nutpie, "compile_nutpie_wall": compile_nutpie_wall,
+            "compile_nutpie_again": compile_nutpie_again, "grad_nutpie": grad_nutpie,
+            "step_nutpie": run_nutpie / steps_nutpie, "steps_per_iteration_nutpie": steps_nutpie / iterations,
+            "load": os.getloadavg()[0]}
 
 
 def fit(spec: Path, engine: str, folder: Path) -> dict:
@@ -186,56 +216,54 @@ def _parts_process(spec: Path, again: bool) -> dict:
     return json.loads(done.stdout.strip().splitlines()[-1])
 
 
-def measure(name: str, engines=("pymc", "nutpie"), again: bool = False) -> dict:
-    """Parts (a fresh process), the whole fit on each engine, the parts again (another process)."""
+def measure(name: str, engines=(), again: bool = False) -> dict:
+    """Parts in two fresh processes (the second sees what the first cached on disk), then whole fits."""
     with tempfile.TemporaryDirectory() as tmp:
         folder = Path(tmp)
         spec = write_problem(name, folder)
         first = _parts_process(spec, again)
         if "failed" in first:
             return {"problem": name, **first}
-        fits = [fit(spec, e, folder) for e in engines]
-        result = {"problem": name, **_parts_process(spec, False), "fits": fits,
-                  "compile_nutpie_first_process": first["compile_nutpie"],
-                  "compile_c_first_process": first["compile_c"],
-                  "compile_nutpie_again": first["compile_nutpie_again"]}
-        if "failed" in result:
-            return result
-    for f in result["fits"]:
-        if "failed" in f:
-            continue
-        compile_ = result["compile_nutpie"] if f["engine"] == "nutpie" else result["compile_c"]
-        # Steps of the slowest chain over warm-up and draws (warm-up assumed as costly per draw).
-        steps = f["steps_per_draw"] * (bench_scale.WARMUP + bench_scale.DRAWS)
-        f["per_step"] = max(f["sampling"] - compile_, 0.0) / steps
+        second = _parts_process(spec, False)
+        if "failed" in second:
+            return {"problem": name, **second}
+        result = {"problem": name, **second, "first": first, "fits": [fit(spec, e, folder) for e in engines]}
     return result
 
 
 def table(results: list) -> str:
-    head = ("| problem | path | dim | rows | grad C ms | grad numba ms | compile C s (first / later process) | "
-            "compile nutpie s (first / later process) | engine | sampling s | wall s | steps/draw | per step ms | gate |")
-    lines = [head, "|" + "---|" * 14]
+    """One line per problem: work, gradient and step costs per engine (CPU), compiles, steps, the faster engine."""
+    head = ("| problem | path | dim | rows | gradient work | grad C us | grad numba us | step PyMC us | "
+            "step nutpie us | steps/iter (PyMC, nutpie) | compile C s (1st, 2nd process) | "
+            "compile nutpie s (1st, 2nd process) | faster at 2 x 2,000 iterations (measured) |")
+    lines = [head, "|" + "---|" * 13]
     for r in results:
         if "failed" in r:
-            lines.append(f"| {r['problem']} | failed: {r['failed']} |" + " |" * 12)
+            lines.append(f"| {r['problem']} | failed: {r['failed']} |" + " |" * 11)
             continue
-        for k, f in enumerate(r["fits"]):
-            first = (f"| {r['problem']} | {r['path']} | {r['dim']} | {r['rows']:,} | {1e3 * r['grad_c']:.3f} | "
-                     f"{1e3 * r['grad_nutpie']:.3f} | {r['compile_c_first_process']:.1f} / {r['compile_c']:.1f} | "
-                     f"{r['compile_nutpie_first_process']:.1f} / {r['compile_nutpie']:.1f} ") if k == 0 else "| | | | | | | | "
-            if "failed" in f:
-                lines.append(first + f"| {f['engine']} | failed: {f['failed']} | | | | | |")
-                continue
-            lines.append(first + f"| {f['engine']} | {f['sampling']:.1f} | {f['wall']:.1f} | "
-                         f"{f['steps_per_draw']:.1f} | {1e3 * f['per_step']:.3f} | "
-                         f"{'passed' if f['passed'] else 'FAILED'} |")
+        steps = 2_000 * r["steps_per_iteration_nutpie"]
+        secs = {"pymc": r["compile_c"] + steps * r["step_c"], "nutpie": r["compile_nutpie"] + steps * r["step_nutpie"]}
+        best = min(secs, key=secs.get)
+        lines.append(
+            f"| {r['problem']} | {r['path']} | {r['dim']:,} | {r['rows']:,} | {r['work']:,} | {1e6 * r['grad_c']:.0f} | "
+            f"{1e6 * r['grad_nutpie']:.0f} | {1e6 * r['step_c']:.0f} | {1e6 * r['step_nutpie']:.0f} | "
+            f"{r['steps_per_iteration_c']:.1f}, {r['steps_per_iteration_nutpie']:.1f} | "
+            f"{r['first']['compile_c']:.1f}, {r['compile_c']:.1f} | "
+            f"{r['first']['compile_nutpie']:.1f}, {r['compile_nutpie']:.1f} | "
+            f"{best} ({secs['pymc']:.0f} s against {secs['nutpie']:.0f} s on nutpie) |")
+        for f in r["fits"]:
+            lines.append(f"| | whole fit on {f['engine']} | | | | | | | | | | | " + (
+                f"failed: {f['failed']} |" if "failed" in f else
+                f"sampling {f['sampling']:.1f} s, wall {f['wall']:.1f} s, {f['steps_per_draw']:.1f} steps/draw, "
+                f"gate {'passed' if f['passed'] else 'FAILED'} |"))
     return "\n".join(lines)
 
 
 def main(argv=None) -> None:
     parser = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
     parser.add_argument("--problems", nargs="+", default=list(PROBLEMS), choices=list(PROBLEMS))
-    parser.add_argument("--engines", nargs="+", default=["pymc", "nutpie"], choices=["pymc", "nutpie"])
+    parser.add_argument("--fits", nargs="*", default=[], choices=["pymc", "nutpie"],
+                        help="also time the whole hierwork fit on these engines (wall time: load-dependent)")
     parser.add_argument("--json", type=Path, help="also write every measurement here")
     parser.add_argument("--again", action="store_true", help="also time a second nutpie compile in one process")
     parser.add_argument("--parts", type=Path, help=argparse.SUPPRESS)
@@ -246,7 +274,7 @@ def main(argv=None) -> None:
     print(f"Machine: {bench_scale.machine()}", flush=True)
     results = []
     for name in args.problems:
-        results.append(measure(name, args.engines, args.again))
+        results.append(measure(name, args.fits, args.again))
         print(f"{name}: {json.dumps(results[-1])} (load {os.getloadavg()[0]:.1f})", file=sys.stderr, flush=True)
         if args.json:
             args.json.write_text(json.dumps(results, indent=1))

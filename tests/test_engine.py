@@ -59,6 +59,8 @@ def test_normal_paths_work_is_cells_times_terms_squared(tmp_path):
     # semi-collapsed: the factor with most groups is integrated, so it leaves the sampled dimension
     big = max(plan.factors, key=lambda f: f.n_groups)
     assert paths.sampled_dimension(plan, "semi_collapsed") == dim - big.n_groups
+    assert paths.gradient_work(plan, "semi_collapsed") == (int(cells * r * r * paths.PATH_SPEED["semi_collapsed"])
+                                                          + dim - big.n_groups)
     # collapsed (one factor): the groups are the cells, nothing but the coefficients sampled
     assert paths.sampled_dimension(plan, "collapsed") == plan.X.shape[1]
 
@@ -68,10 +70,11 @@ def test_a_requested_engine_is_kept():
     assert paths.choose_engine("nutpie", 1, 1) == ("nutpie", "set in the spec or on the command line")
 
 
-def test_small_problems_get_pymc_and_large_ones_nutpie():
-    small = paths.choose_engine("auto", 1_000, 4)
-    large = paths.choose_engine("auto", 2_000_000, 4_000)
-    assert small[0] == "pymc" and large[0] == "nutpie"
+def test_small_problems_get_pymc_and_large_ones_nutpie(tmp_path):
+    # a one-factor collapsed model of 120 rows: compile dominates; 73,000 crossed cells: steps dominate
+    small = _check(tmp_path)
+    assert small.path == "collapsed" and small.engine == "pymc"
+    assert paths.choose_engine("auto", 1_800_000, 4_000)[0] == "nutpie"
     # one crossover in work at fixed dimension: the predicted time grows faster on the slower gradient
     picks = [paths.choose_engine("auto", w, 50)[0] for w in np.geomspace(10, 1e8, 60).astype(int)]
     assert picks[0] != picks[-1] and sum(a != b for a, b in zip(picks, picks[1:])) == 1

@@ -181,18 +181,25 @@ def sampled_dimension(plan, path: str) -> int:
     return plan.X.shape[1] + sum(f.n_groups * len(f.varying) for f in factors)
 
 
+#: Gradient cost per unit of work relative to the reduced path's, where a path's code does the same
+#: algebra in fewer passes: the semi-collapsed path's fused per-column loops, 4.1 ms against the
+#: reduced path's 55 ms on the same 73,000-row crossed cells (benchmarks/RESULTS.md).
+PATH_SPEED = {"semi_collapsed": 4.1 / 55}
+
+
 def gradient_work(plan, path: str) -> int:
     """Work of one log-density gradient on a path, in element operations up to a constant factor.
 
     Each likelihood term (:func:`likelihood_size`) costs its coefficients
     (population columns plus every factor's varying terms), or their square
     where the term is a cell of normal sufficient statistics (its quadratic
-    form); each sampled parameter costs one more. Measured against the
-    gradient's time in ``benchmarks/bench_engine.py``.
+    form), scaled by :data:`PATH_SPEED`; each sampled parameter costs one more.
+    Measured against the gradient's time in ``benchmarks/bench_engine.py``.
     """
     r = plan.X.shape[1] + sum(len(f.varying) for f in plan.factors)
     per_term = r * r if plan.family.exact_normal and path != "plain" else r
-    return likelihood_size(plan, path) * per_term + sampled_dimension(plan, path)
+    terms = likelihood_size(plan, path) * per_term * PATH_SPEED.get(path, 1.0)
+    return int(terms) + sampled_dimension(plan, path)
 
 
 @dataclass(frozen=True)
@@ -212,12 +219,16 @@ class EngineCost:
         return self.compile_s + steps * (self.step_s + work * self.work_s)
 
 
-#: Measured on 2 cores (benchmarks/RESULTS.md, "Engine choice"); nutpie's numba compile is not
-#: cached between processes, PyTensor's C compile is.
-COMPILE_PYMC, STEP_PYMC, WORK_PYMC = 11.0, 1.8e-3, 22e-9
-COMPILE_NUTPIE, STEP_NUTPIE, WORK_NUTPIE = 25.0, 0.3e-3, 6.5e-9
-#: Leapfrog steps per iteration at one dimension (:func:`leapfrog_steps`).
-STEPS_AT_1 = 4.8
+#: CPU seconds (an idle machine's wall clock for one chain) measured by benchmarks/bench_engine.py on
+#: the crossed problem crossed-S (reduced path, 96 parameters, gradient work 18,142), RESULTS.md
+#: "Engine choice": compile with a warm cache (nutpie's numba compile is not cached between processes,
+#: PyTensor's C modules are), the sampler's own cost per leapfrog step (step less gradient), and the
+#: gradient per unit of work (0.57 ms C, 0.23 ms numba there).
+COMPILE_PYMC, STEP_PYMC, WORK_PYMC = 9.3, 0.18e-3, 31e-9
+COMPILE_NUTPIE, STEP_NUTPIE, WORK_NUTPIE = 25.2, 0.04e-3, 12.5e-9
+#: Leapfrog steps per iteration at one dimension (:func:`leapfrog_steps`): 15 steps at 96
+#: parameters, 24 at 1,116 measured (2 x 2,000 iterations).
+STEPS_AT_1 = 4.5
 ENGINE_COSTS = {"pymc": EngineCost(compile_s=COMPILE_PYMC, step_s=STEP_PYMC, work_s=WORK_PYMC),
                 "nutpie": EngineCost(compile_s=COMPILE_NUTPIE, step_s=STEP_NUTPIE, work_s=WORK_NUTPIE)}
 
