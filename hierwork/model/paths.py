@@ -1,4 +1,4 @@
-"""Which exact model path a plan takes, and how much work its likelihood is per gradient.
+"""Which exact model path a plan takes, how much work one gradient is on it, and which NUTS engine samples it.
 
 * ``collapsed``: normal outcome whose factors form one nesting chain (one
   factor, or plot within farm within region ...): every level's effects are
@@ -18,6 +18,11 @@
   summed) term, the same posterior as per row
   (:meth:`~hierwork.plan.families.base.Family.aggregate`);
 * ``plain``: every other case, the per-row model.
+
+The engine (:func:`choose_engine`) is the one predicted to sample faster:
+compile time plus the expected leapfrog steps times the cost of one step
+(the sampler's own work plus :func:`gradient_work` times a measured cost
+per unit), with constants measured by ``benchmarks/bench_engine.py``.
 
 The spec's ``sampling.path`` may ask for a slower exact path than the best one
 (or ``semi_collapsed`` where it applies), never one that does not apply. Light: NumPy only, so ``check`` reads
@@ -267,9 +272,8 @@ def choose_engine(requested: str, work: int, dimension: int = 1, iterations: int
     secs = {e: cost.seconds(work, steps) for e, cost in ENGINE_COSTS.items()}
     engine = min(secs, key=secs.get)
     other = "pymc" if engine == "nutpie" else "nutpie"
-    return engine, (f"predicted sampling {_secs(secs[engine])} on {engine} against {_secs(secs[other])} on "
-                    f"{other}: {steps / 1e3:,.0f}k leapfrog steps of a {_work(work)}-operation gradient "
-                    f"(compile included)")
+    return engine, (f"predicted sampling {_secs(secs[engine])} against {_secs(secs[other])} on {other}, "
+                    f"compile included ({steps / 1e3:,.0f}k leapfrog steps per core, gradient work {_work(work)})")
 
 
 def _secs(s: float) -> str:
