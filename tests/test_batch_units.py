@@ -167,6 +167,19 @@ def test_a_non_centred_factor_is_switched_to_centred():
     assert next_remedy(policy, 0, 1, named, SETTINGS).overrides == {"groups.site.parameterisation": "centred"}
 
 
+def test_a_partial_factor_goes_to_the_form_its_weights_misjudged():
+    # Divergences: the groups know less than the weights assumed, so all non-centred; slow mixing
+    # without divergences: they know more, so all centred (Papaspiliopoulos, Roberts and Skold 2007).
+    policy = Policy((Step("parameterisation"),), 3)
+    settings = {**SETTINGS, "groups.plot.parameterisation": "partial"}
+    funnel = {"checks": [check("divergences", 4, 0, "<=", False, "plot.sd")]}
+    assert next_remedy(policy, 0, 1, funnel, settings).overrides == {"groups.plot.parameterisation": "non_centred"}
+    unnamed = {"checks": [check("divergences", 4, 0, "<=", False, None)]}
+    assert next_remedy(policy, 0, 1, unnamed, settings).overrides == {"groups.plot.parameterisation": "non_centred"}
+    slow = {"checks": [check("r_hat", 1.03, 1.01, "<=", False, "plot=p5 intercept")]}
+    assert next_remedy(policy, 0, 1, slow, settings).overrides == {"groups.plot.parameterisation": "centred"}
+
+
 def test_target_accept_never_lowers():
     policy = Policy((Step("target_accept", 0.95),), 3)
     assert next_remedy(policy, 0, 1, FUNNEL, {**SETTINGS, "sampling.target_accept": 0.97}) is None

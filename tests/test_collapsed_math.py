@@ -196,7 +196,9 @@ def test_collapsed_gradient_matches_finite_differences():
     L0 = _random_chol(rng, 2)
     pytensor.gradient.verify_grad(
         lambda b_, L_, s_: collapsed_loglik(st_, [Level((0, 2), 6)], b_, [L_], s_),
-        [rng.normal(size=3), L0, np.array(0.8)], rng=rng, abs_tol=1e-6, rel_tol=1e-6)
+        [rng.normal(size=3), L0, np.array(0.8)], rng=rng, abs_tol=1e-5, rel_tol=1e-5)
+    # One-sided differences with PyTensor's float64 step (1e-7) are off by about 1e-6 on this
+    # problem as the BLAS's rounding varies; a wrong gradient is off by far more.
 
 
 # --- exact conditional draws --------------------------------------------------------

@@ -109,6 +109,30 @@ def test_shifted_model_has_the_unshifted_log_density_at_the_sheared_point(tmp_pa
         assert abs(logp_plain(naive) - logp_plain(image)) > 1e-6
 
 
+def test_semi_collapsed_path_shifts_its_one_sampled_factor(tmp_path):
+    """Worker integrated out, machine sampled: machine is crossed with worker, so the intercept is shifted
+    and machine's centred offsets are contrasts and a mean, the same density at the sheared point as the
+    unshifted model (whose one centred factor is sampled as group coefficients ``b + u``)."""
+    from hierwork.model import semi_collapsed
+
+    plan = _plan(tmp_path, "machines.csv", "{column: score, family: normal}", "[]",
+                 "{worker: {column: worker}, machine: {column: machine, parameterisation: centred}}")
+    problem = semi_collapsed.semi_collapsed_problem(plan)
+    assert problem.factor.name == "worker" and [f.name for f in problem.rest.factors] == ["machine"]
+    shifted = semi_collapsed.build_semi_collapsed_model(plan, problem)
+    plain = semi_collapsed.build_semi_collapsed_model(plan, problem, shift=False)
+    assert "machine__contrast" in shifted.named_vars and "machine__coef" in plain.named_vars
+    effects_of = _function(shifted, ["machine__effect"])
+    logp_shifted, logp_plain = _function(shifted), _function(plain)
+    rng = np.random.default_rng(4)
+    start = shifted.initial_point()
+    for _ in range(3):
+        point = {k: v + rng.normal(0, 0.5, np.shape(v)) for k, v in start.items()}
+        image, b, log_jacobian = _unshifted_image(problem.rest, effects_of, point)
+        image["machine__coef"] = image.pop("machine__u") + b[0]
+        assert logp_shifted(point) == pytest.approx(logp_plain(image) + log_jacobian, rel=1e-10, abs=1e-8)
+
+
 def test_shift_applies_to_crossed_factors_only(tmp_path):
     """Nested (declared, or labels inside the other's groups) and single factors keep their coefficients."""
     crossed = _plan(tmp_path, "oats.csv", "{column: yield, family: normal}", "[nitrogen_cwt]",

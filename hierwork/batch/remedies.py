@@ -12,6 +12,8 @@ from hierwork.declare.remedies import Policy, Step
 from hierwork.inference.checks import check_def
 
 FORMS = {"centred": "non_centred", "non_centred": "centred"}
+#: Checks whose failure says the groups are less informed than the form assumed (funnels).
+FUNNEL_KINDS = {"divergences", "geometry"}
 #: The checks that more draws alone address.
 ESS_CHECKS = ("ess_bulk", "ess_tail")
 
@@ -74,7 +76,7 @@ def next_remedy(policy: Policy, cursor: int, attempts_done: int, diagnostics: Ma
     current : mapping
         The failed attempt's settings as dotted paths: ``sampling.target_accept``,
         ``sampling.warmup``, ``sampling.draws`` and
-        ``groups.<factor>.parameterisation`` (resolved: centred or non_centred;
+        ``groups.<factor>.parameterisation`` (resolved: centred, non_centred or partial;
         absent for factors whose effects were integrated out).
 
     Steps are tried in the policy's order from ``cursor``, skipping those that
@@ -111,11 +113,21 @@ def _apply(step: Step, kinds: set, failing: list, forms: dict, current: Mapping)
         now = float(current.get("sampling.target_accept", 0.0))
         return {"sampling.target_accept": step.value} if "divergences" in kinds and step.value > now else {}
     if step.kind == "parameterisation":
-        named = [f for f in failing_factors(failing, forms) if forms[f] in FORMS]
-        if not named and kinds & {"divergences", "geometry"}:
-            named = [f for f, form in forms.items() if form == "centred"]
-        return {f"groups.{f}.parameterisation": FORMS[forms[f]] for f in named}
+        named = [f for f in failing_factors(failing, forms) if forms[f] in FORMS or forms[f] == "partial"]
+        if not named and kinds & FUNNEL_KINDS:
+            named = [f for f, form in forms.items() if form in ("centred", "partial")]
+        return {f"groups.{f}.parameterisation": _other_form(forms[f], kinds) for f in named}
     key = "sampling.warmup" if step.kind == "warmup_factor" else "sampling.draws"
     if key not in current or (step.kind == "draws_factor" and "mixing" not in kinds):
         return {}
     return {key: int(round(int(current[key]) * step.value))}
+
+
+def _other_form(form: str, kinds: set) -> str:
+    """The form to try after ``form`` failed: the other fixed form; for ``partial``, the end its
+    weights misjudged. Divergences or a funnel's geometry mean the groups know less than the
+    weights assumed (all non-centred); otherwise slow mixing means they know more (all centred)."""
+    if form == "partial":
+        return "non_centred" if kinds & FUNNEL_KINDS else "centred"
+    return FORMS[form]
+

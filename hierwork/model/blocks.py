@@ -97,15 +97,20 @@ def population_block(plan: ModelPlan, centre: bool, offset=None):
         dist, params = _params("intercept", [plan.priors["intercept"]], False)
         start = _start(plan.priors["intercept"]) + float(np.dot(means, [_start(p) for p in slope_priors]))
         if offset is None:
-            intercept = pm.Flat("b_centred_intercept", initval=start) - pt.dot(slopes, means)
+            intercept = pm.Flat("b_centred_intercept", initval=start) - _dot(slopes, means)
         else:  # the centred groups' mean intercept is o_0 + sum_k o_k m_k
-            a = pm.Flat("b_shifted_intercept", initval=start) - offset[0] - pt.dot(offset[1:], means)
-            intercept = a - pt.dot(slopes, means)
+            a = pm.Flat("b_shifted_intercept", initval=start) - offset[0] - _dot(offset[1:], means)
+            intercept = a - _dot(slopes, means)
         pm.Potential("intercept_prior", pm.logp(dist.dist(**params), intercept))
     else:
         intercept = prior_rv("b_intercept", [plan.priors["intercept"]])
     b = pm.Deterministic("b", pt.concatenate([pt.stack([intercept]), slopes]), dims="term")
     return b, means
+
+
+def _dot(v, means):
+    """``v . means``; 0 with no slopes (an empty product still costs a matrix-vector call per gradient)."""
+    return pt.dot(v, means) if len(means) else 0.0
 
 
 def _start(prior) -> float:

@@ -144,14 +144,14 @@ def _backward(R, v):
 
 
 def _segment_sum(xp, columns, index, n_out):
-    """Sum each (J,) column into ``n_out`` groups given by ``index``, in one operation."""
-    values = xp.stack(columns, axis=1)
+    """Sum each (J,) column into ``n_out`` groups given by ``index``.
+
+    One vector scatter per column: PyTensor's scatter-add has C code for
+    vectors only (a matrix falls back to numpy's ``add.at`` in Python).
+    """
     if xp is np:
-        out = np.zeros((n_out, len(columns)))
-        np.add.at(out, index, values)
-    else:
-        out = xp.inc_subtensor(xp.zeros((n_out, len(columns)))[index], values)
-    return [out[:, i] for i in range(len(columns))]
+        return [np.bincount(index, weights=c, minlength=n_out) for c in columns]
+    return [xp.inc_subtensor(xp.zeros(n_out)[index], c) for c in columns]
 
 
 def _matvec(xp, A, v):
@@ -302,7 +302,7 @@ def reduced_loglik(stats: CellStats, b, effects, sigma=None, xp=None):
     xp = _namespace(xp)
     _check_sigma(stats, sigma)
     sigma = _f64(xp, sigma)
-    tt = stats.shifted(_cell_coefficients(xp, stats.n_terms, b, effects))
+    tt = stats.shifted(xp.stack(cell_coefficients(xp, stats, b, effects), axis=1))
     rss = (stats.yty - 2.0 * (tt * stats.xty).sum(axis=-1)
            + (tt * (stats.xtx * tt[:, None, :]).sum(axis=-1)).sum(axis=-1))
     acc = stats.n * _LOG_2PI
@@ -311,15 +311,20 @@ def reduced_loglik(stats: CellStats, b, effects, sigma=None, xp=None):
     return -0.5 * (acc + stats.n * xp.log(sigma**2) + rss / sigma**2)
 
 
-def _cell_coefficients(xp, p, b, effects):
-    """(J, p) coefficients of every cell: ``b`` plus each factor's effect embedded in its columns."""
-    t = _f64(xp, b)[None, :]
+def cell_coefficients(xp, stats: CellStats, b, effects) -> list:
+    """The coefficients of every cell, one (J,) vector per design column: ``b`` plus each factor's effects.
+
+    Gathered column by column: the gradient of a vector gather is a vector
+    scatter-add, which PyTensor runs in C (a matrix one runs in Python).
+    """
+    b = _f64(xp, b)
+    zeros = np.zeros(len(stats.n))
+    tt = [b[a] + zeros for a in range(stats.n_terms)]
     for u, cols, cell_group in effects:
         u = _f64(xp, u)
-        embed = np.zeros((len(cols), p))
-        embed[np.arange(len(cols)), list(cols)] = 1.0
-        t = t + (u[np.asarray(cell_group)][:, :, None] * embed[None]).sum(axis=1)
-    return t
+        for k, a in enumerate(cols):
+            tt[a] = tt[a] + u[:, k][np.asarray(cell_group)]
+    return tt
 
 
 @dataclass(frozen=True)
@@ -395,12 +400,8 @@ def integrated_group_loglik(stats: CellStats, b, effects, factor: Integrated, ch
     _check_sigma(stats, sigma)
     cols, p = list(factor.cols), stats.n_terms
     # Per-column (J,) vectors, so the products fuse into a few elementwise loops (see above).
-    b = _f64(xp, b)
-    tt = [b[a] + 0.0 * stats.centre if a else b[0] - stats.centre for a in range(p)]
-    for u, ucols, cell_group in effects:
-        u = _f64(xp, u)
-        for k, a in enumerate(ucols):
-            tt[a] = tt[a] + u[:, k][np.asarray(cell_group)]
+    tt = cell_coefficients(xp, stats, b, effects)
+    tt[0] = tt[0] - stats.centre
     xtx_t = [sum(stats.xtx[:, a, c] * tt[c] for c in range(p)) for a in range(p)]
     rr = stats.yty + sum(tt[a] * (xtx_t[a] - 2.0 * stats.xty[:, a]) for a in range(p))
     summed = factor.sums(xp, [rr] + [stats.xty[:, c] - xtx_t[c] for c in cols])

@@ -47,7 +47,7 @@ from hierwork.model.spread import row_residual_sd
 from hierwork.plan.plan import ModelPlan
 
 
-def build_model(plan: ModelPlan, centre: bool = True, reduced: bool = False, shift: bool = True,
+def build_model(plan: ModelPlan, centre: bool = True, reduced: bool = False, shift: bool | tuple = True,
                 likelihood_of=None) -> pm.Model:
     """Build the PyMC model of a plan with every group effect sampled.
 
@@ -63,11 +63,13 @@ def build_model(plan: ModelPlan, centre: bool = True, reduced: bool = False, shi
         per gradient): from sufficient statistics for normal outcomes, from
         summed rows of identical predictors and groups for counts and
         proportions (:meth:`~hierwork.plan.families.base.Family.aggregate`).
-    shift : bool
+    shift : bool or tuple of int
         With ``centre``, sample the coefficients of
         :func:`~hierwork.model.paths.shifted_columns` shifted by the mean group
         effects (default; the same posterior). ``False`` samples them as they
-        are (the reference the shift is tested against).
+        are (the reference the shift is tested against); a tuple names the
+        columns (the semi-collapsed path: the plan's factors are crossed with
+        the one integrated out).
     likelihood_of : callable, optional
         ``likelihood_of(b, free_cols, parts, extras)`` adds the likelihood
         instead (the partially collapsed path, :mod:`hierwork.model.semi_collapsed`);
@@ -79,7 +81,7 @@ def build_model(plan: ModelPlan, centre: bool = True, reduced: bool = False, shi
     pymc.Model
     """
     with pm.Model(coords=coords_of(plan)) as model:
-        shifted = shifted_columns(plan) if centre and shift else ()
+        shifted = () if not centre or shift is False else shifted_columns(plan) if shift is True else shift
         means = predictor_means(plan, centre)
         b = None if shifted else population_block(plan, centre)[0]  # shifted: once the effects exist
         extras = family_extras(plan)
@@ -96,7 +98,7 @@ def build_model(plan: ModelPlan, centre: bool = True, reduced: bool = False, shi
             dims = (f.name, f"{f.name}__term")
             shape = (f.n_groups, len(f.varying))
             form = f.parameterisation if centre else "non_centred"  # generative form for prior simulation
-            if form == "centred" and len(plan.factors) == 1:
+            if form == "centred" and len(plan.factors) == 1 and not shifted:
                 mean = _group_mean(b, f, shift, A, shape)
                 start = np.zeros(shape)
                 start[:, 0] = plan.priors["intercept"].params.get("mu", 0.0)
@@ -106,7 +108,8 @@ def build_model(plan: ModelPlan, centre: bool = True, reduced: bool = False, shi
                 anchored.update(f.varying_cols)
             else:
                 if form == "partial":
-                    mean = _group_mean(b, f, shift, A, shape) if len(plan.factors) == 1 else pt.zeros(shape)
+                    alone = len(plan.factors) == 1 and not shifted
+                    mean = _group_mean(b, f, shift, A, shape) if alone else pt.zeros(shape)
                     effect_c = _partial(f.name, mean, sd, chol_c, f.weights, dims)
                 elif form == "centred" and shifted:
                     effect_c = _contrasts_and_mean(f.name, sd, chol_c, shape)
@@ -133,7 +136,8 @@ def build_model(plan: ModelPlan, centre: bool = True, reduced: bool = False, shi
             eta = pt.dot(X[:, free], b[free]) if free else pt.zeros(X.shape[0])
             for f, values, shift in parts:
                 index = f.index[take]
-                eta = eta + (values[index] * X[:, list(f.varying_cols)]).sum(axis=1)
+                for k, col in enumerate(f.varying_cols):  # vector gathers: their gradient runs in C
+                    eta = eta + values[:, k][index] * X[:, col]
                 if shift is not None:
                     eta = eta + shift[index]
             if cells is None:

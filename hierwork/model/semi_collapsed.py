@@ -29,7 +29,7 @@ from hierwork.inference import seeds
 from hierwork.model import marginal
 from hierwork.model.blocks import coords_of, factor_scales, group_predictor_term
 from hierwork.model.cells import CellStats
-from hierwork.model.paths import integrated_factor, sampled_plan
+from hierwork.model.paths import integrated_factor, sampled_plan, shifted_columns
 from hierwork.model.rowwise import build_model, cell_terms
 from hierwork.plan.plan import FactorPlan, ModelPlan
 
@@ -49,13 +49,17 @@ def semi_collapsed_problem(plan: ModelPlan) -> SemiCollapsedProblem:
     return SemiCollapsedProblem(integrated_factor(plan), sampled_plan(plan, "semi_collapsed"))
 
 
-def build_semi_collapsed_model(plan: ModelPlan, problem: SemiCollapsedProblem | None = None) -> pm.Model:
+def build_semi_collapsed_model(plan: ModelPlan, problem: SemiCollapsedProblem | None = None,
+                               shift: bool = True) -> pm.Model:
     """PyMC model with the integrated factor's effects integrated out, the others sampled.
 
     Free variables and priors are those of :func:`hierwork.model.rowwise.build_model`
     less the integrated factor's effects (its ``F__sd``, ``F__corr`` and
     ``F__gamma`` stay); ``F__effect`` is added after sampling by
-    :func:`add_group_effects`.
+    :func:`add_group_effects`. The sampled factors are crossed with the
+    integrated one, whose mean effect the data do not separate from the
+    intercept either, so the coefficients the reduced path would shift are
+    shifted here too (``shift=False``: not, the reference of the tests).
     """
     problem = problem or semi_collapsed_problem(plan)
     f = problem.factor
@@ -74,7 +78,8 @@ def build_semi_collapsed_model(plan: ModelPlan, problem: SemiCollapsedProblem | 
         pm.Potential("y_integrated", marginal.integrated_group_loglik(stats, coef, effects, integrated, chol,
                                                                 extras.get("residual_sd")).sum())
 
-    return build_model(problem.rest, reduced=True, likelihood_of=likelihood_of)
+    return build_model(problem.rest, reduced=True, shift=shifted_columns(plan) if shift else False,
+                       likelihood_of=likelihood_of)
 
 
 def add_group_effects(idata, plan: ModelPlan, seed, problem: SemiCollapsedProblem | None = None):

@@ -148,5 +148,6 @@ def finish(fig: Figure, alt: str, caption: str, stamp: str | None = None) -> Plo
                  weight="bold")
     buffer = io.BytesIO()
     fig.savefig(buffer, format="svg", metadata={"Date": None, "Creator": None})
+    fig.set_layout_engine("none")  # keep the layout just computed: the PNG copy is drawn without recomputing it
     uri = "data:image/svg+xml;base64," + base64.b64encode(buffer.getvalue()).decode("ascii")
     return Plot(uri, alt, caption, fig)
