@@ -50,13 +50,6 @@ def configure_blas() -> str | None:
     return added
 
 
-def default_cores(chains: int, requested: int | None) -> int:
-    """Processes for chains: the request, or one per chain up to the CPU count."""
-    if requested:
-        return requested
-    return max(1, min(chains, os.cpu_count() or 1))
-
-
 def import_arviz_cached() -> None:
     """Import ArviZ (if not yet imported) with numba's ``vectorize`` caching compiled ufuncs."""
     if "arviz" in sys.modules:

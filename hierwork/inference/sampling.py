@@ -13,7 +13,7 @@ import time
 import warnings
 
 from hierwork import runtime  # noqa: F401  (before PyMC)
-from hierwork.runtime import default_cores
+from hierwork.model.paths import default_cores
 from hierwork.interrupts import chain_context
 
 import arviz as az

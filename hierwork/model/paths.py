@@ -30,6 +30,7 @@ the decision without importing PyMC.
 """
 from __future__ import annotations
 
+import os
 from dataclasses import dataclass, replace
 
 import numpy as np
@@ -247,6 +248,13 @@ def leapfrog_steps(dimension: int) -> float:
     fitted to the steps measured in ``benchmarks/bench_engine.py``.
     """
     return STEPS_AT_1 * max(dimension, 1) ** 0.25
+
+
+def default_cores(chains: int, requested: int | None) -> int:
+    """Processes for chains: the request, or one per chain up to the CPU count."""
+    if requested:
+        return requested
+    return max(1, min(chains, os.cpu_count() or 1))
 
 
 def choose_engine(requested: str, work: int, dimension: int = 1, iterations: int = 2000,
