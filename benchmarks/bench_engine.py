@@ -77,7 +77,7 @@ def make_frame(family: str, factors: dict, n_rows: int, predictors: str, seed: i
         frame[name] = [f"{name[0]}{k:04d}" for k in code]
         eta += rng.normal(0.0, 0.4, n)[code]
     if predictors == "numeric":
-        frame["weight_kg"] = rng.gamma(2.0, 1.5, n_rows).round(3)
+        frame["weight_kg"] = rng.gamma(2.0, 1.5, n_rows).round(6)  # no two rows alike
         eta += 0.1 * frame["weight_kg"]
     else:
         vehicle, slot = rng.integers(0, len(VEHICLES), n_rows), rng.integers(0, len(SLOTS), n_rows)

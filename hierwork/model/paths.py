@@ -227,11 +227,11 @@ class EngineCost:
 
 #: CPU seconds (an idle machine's wall clock for one chain) measured by benchmarks/bench_engine.py on
 #: the crossed problem crossed-S (reduced path, 96 parameters, gradient work 18,142), RESULTS.md
-#: "Engine choice": compile with a warm cache (nutpie's numba compile is not cached between processes,
-#: PyTensor's C modules are), the sampler's own cost per leapfrog step (step less gradient), and the
-#: gradient per unit of work (0.57 ms C, 0.23 ms numba there).
-COMPILE_PYMC, STEP_PYMC, WORK_PYMC = 9.3, 0.18e-3, 31e-9
-COMPILE_NUTPIE, STEP_NUTPIE, WORK_NUTPIE = 25.2, 0.04e-3, 12.5e-9
+#: "Engine choice": compile with warm caches (nutpie's numba compile is not cached between
+#: processes, PyTensor's C modules are), the sampler's own cost per leapfrog step (step less
+#: gradient), and the gradient per unit of work (0.31 ms C, 0.16 ms numba there).
+COMPILE_PYMC, STEP_PYMC, WORK_PYMC = 9.3, 0.21e-3, 17e-9
+COMPILE_NUTPIE, STEP_NUTPIE, WORK_NUTPIE = 25.2, 0.03e-3, 8.6e-9
 #: Leapfrog steps per iteration at one dimension (:func:`leapfrog_steps`): 15 steps at 96
 #: parameters, 24 at 1,116 measured (2 x 2,000 iterations).
 STEPS_AT_1 = 4.5
