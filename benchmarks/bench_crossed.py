@@ -11,7 +11,10 @@ draws); timing, ESS and the process-tree memory are measured by
 Usage::
 
     python benchmarks/bench_crossed.py --cap 1800
-    python benchmarks/bench_crossed.py --methods hierwork
+    python benchmarks/bench_crossed.py --methods hierwork hierwork-semi-nutpie
+
+``hierwork`` fits with path and engine ``auto``; ``hierwork-semi-nutpie``,
+``hierwork-semi-pymc`` and ``hierwork-reduced-nutpie`` fix them in the spec.
 """
 from __future__ import annotations
 
@@ -56,7 +59,8 @@ def _weights(rng, n):
     return w / w.sum()
 
 
-def write_problem(folder: Path) -> Path:
+def write_problem(folder: Path, **sampling) -> Path:
+    """CSV and spec (2 chains x (1,000 + 1,000), and any other ``sampling`` keys); returns the spec path."""
     import yaml
 
     frame, _ = make_problem()
@@ -65,16 +69,16 @@ def write_problem(folder: Path) -> Path:
             "outcome": {"column": "minutes", "family": "normal"}, "predictors": ["weight_kg"],
             "groups": {"courier": {}, "address": {}, "region": {}},
             "sampling": {"chains": bench_scale.CHAINS, "warmup": bench_scale.WARMUP,
-                         "draws": bench_scale.DRAWS, "seed": SEED}}
+                         "draws": bench_scale.DRAWS, "seed": SEED, **sampling}}
     path = folder / "spec.yaml"
     path.write_text(yaml.safe_dump(spec, sort_keys=False))
     return path
 
 
-def run_hierwork(folder: Path) -> dict:
-    """The whole ``hierwork fit`` command (:func:`bench_scale.time_fit`)."""
+def run_hierwork(folder: Path, **sampling) -> dict:
+    """The whole ``hierwork fit`` command (:func:`bench_scale.time_fit`), path and engine ``auto`` unless given."""
     names = ["b", "residual_sd"] + [f"{f}__{v}" for f in ("courier", "address", "region") for v in ("sd", "effect")]
-    return bench_scale.time_fit(write_problem(folder), folder, names)
+    return bench_scale.time_fit(write_problem(folder, **sampling), folder, names)
 
 
 def run_handwritten(folder: Path) -> dict:
@@ -104,8 +108,11 @@ def run_handwritten(folder: Path) -> dict:
 
 
 def main(argv=None) -> None:
-    bench_scale.sibling_main(__doc__, "crossed", SEED, __file__,
-                             {"hierwork": run_hierwork, "pymc-nc": run_handwritten}, argv)
+    bench_scale.sibling_main(__doc__, "crossed", SEED, __file__, {
+        "hierwork": run_hierwork, "pymc-nc": run_handwritten,
+        "hierwork-semi-nutpie": lambda folder: run_hierwork(folder, path="semi_collapsed", engine="nutpie"),
+        "hierwork-semi-pymc": lambda folder: run_hierwork(folder, path="semi_collapsed", engine="pymc"),
+        "hierwork-reduced-nutpie": lambda folder: run_hierwork(folder, path="reduced", engine="nutpie")}, argv)
 
 
 if __name__ == "__main__":

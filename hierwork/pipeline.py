@@ -17,7 +17,7 @@ from pathlib import Path
 
 from hierwork import __version__
 from hierwork.declare.spec import Spec, load_spec
-from hierwork.model.paths import choose_engine, likelihood_size, resolve_path
+from hierwork.model.paths import choose_engine, default_cores, gradient_work, resolve_path, sampled_dimension
 
 _PACKAGES = ("pymc", "pytensor", "arviz", "numpy", "scipy", "pandas", "xarray", "nutpie")
 
@@ -83,8 +83,38 @@ def check(spec, overrides: dict | None = None) -> CheckReport:
 
     plan = make_plan(spec, load_dataset(spec))
     path, path_reason = resolve_path(spec, plan)
-    engine, reason = choose_engine(spec.sampling["engine"], likelihood_size(plan, path) * plan.X.shape[1])
+    engine, reason = choose_engine(spec.sampling["engine"], **engine_load(plan, path))
     return CheckReport(plan, path, path_reason, engine, reason)
+
+
+def path_model(plan, path: str):
+    """The PyMC model NUTS samples on a path, and the step that completes its posterior.
+
+    Returns ``(model, complete)``; ``complete(idata, seed)`` draws the effects a
+    path integrates out (collapsed, semi-collapsed) and returns the idata.
+    """
+    if path == "collapsed":
+        from hierwork.model.collapsed import add_group_effects, build_collapsed_model, collapsed_problem
+
+        problem = collapsed_problem(plan)
+        return build_collapsed_model(plan, problem), lambda idata, seed: add_group_effects(idata, plan, seed, problem)
+    if path == "semi_collapsed":
+        from hierwork.model.semi_collapsed import add_group_effects, build_semi_collapsed_model, semi_collapsed_problem
+
+        problem = semi_collapsed_problem(plan)
+        return (build_semi_collapsed_model(plan, problem),
+                lambda idata, seed: add_group_effects(idata, plan, seed, problem))
+    from hierwork.model.rowwise import build_model
+
+    return build_model(plan, reduced=path == "reduced"), lambda idata, seed: idata
+
+
+def engine_load(plan, path: str) -> dict:
+    """What :func:`~hierwork.model.paths.choose_engine` weighs: gradient work, dimension, iterations, rounds."""
+    s = plan.spec.sampling
+    cores = default_cores(s["chains"], s.get("cores"))
+    return {"work": gradient_work(plan, path), "dimension": sampled_dimension(plan, path),
+            "iterations": s["warmup"] + s["draws"], "rounds": -(-s["chains"] // cores)}
 
 
 def sample_posterior(report: CheckReport, progress: bool | None = None):
@@ -103,22 +133,9 @@ def sample_posterior(report: CheckReport, progress: bool | None = None):
     """
     from hierwork.inference.sampling import run_sampler
 
-    plan, settings = report.plan, report.plan.spec.sampling
-    if report.path == "collapsed":
-        from hierwork.model.collapsed import add_group_effects, build_collapsed_model, collapsed_problem
-
-        problem = collapsed_problem(plan)
-        idata = run_sampler(build_collapsed_model(plan, problem), settings, report.engine, progress)
-        return add_group_effects(idata, plan, settings["seed"], problem)
-    if report.path == "semi_collapsed":
-        from hierwork.model.semi_collapsed import add_group_effects, build_semi_collapsed_model, semi_collapsed_problem
-
-        problem = semi_collapsed_problem(plan)
-        idata = run_sampler(build_semi_collapsed_model(plan, problem), settings, report.engine, progress)
-        return add_group_effects(idata, plan, settings["seed"], problem)
-    from hierwork.model.rowwise import build_model
-
-    return run_sampler(build_model(plan, reduced=report.path == "reduced"), settings, report.engine, progress)
+    settings = report.plan.spec.sampling
+    model, complete = path_model(report.plan, report.path)
+    return complete(run_sampler(model, settings, report.engine, progress), settings["seed"])
 
 
 def fit(spec, out, force: bool = False, overrides: dict | None = None, progress: bool | None = None,

@@ -117,7 +117,8 @@ SPEC_KEYS = {
         "max_treedepth": Key("int", "NUTS maximum tree depth.", 10, low=4, high=15),
         "seed": Key("int", "Random seed: the same seed gives the same numbers.", 20261202, low=0),
         "cores": Key("int", "Processes for chains (default: chains, at most the CPU count).", None, low=1),
-        "engine": Key("choice", "NUTS implementation: PyMC's own, nutpie, or chosen by problem size.",
+        "engine": Key("choice", "NUTS implementation: PyMC's own, nutpie, or 'auto': the one predicted to "
+                      "sample faster (compile plus leapfrog steps x gradient cost; check prints both).",
                       "auto", choices=("auto", "pymc", "nutpie")),
         "path": Key("choice", "Likelihood form: collapsed (normal, effects integrated out), semi_collapsed (normal, "
                     "the factor with most groups integrated out, the others sampled), reduced (per "

@@ -8,23 +8,17 @@ every :data:`LOG_EVERY` seconds and when the chain ends
 """
 from __future__ import annotations
 
-import os
 import sys
 import time
+import warnings
 
 from hierwork import runtime  # noqa: F401  (before PyMC)
+from hierwork.model.paths import default_cores
 from hierwork.interrupts import chain_context
 
 import arviz as az
 import numpy as np
 import pymc as pm
-
-
-def default_cores(chains: int, requested: int | None) -> int:
-    """Processes for chains: the request, or one per chain up to the CPU count."""
-    if requested:
-        return requested
-    return max(1, min(chains, os.cpu_count() or 1))
 
 
 #: Seconds between progress lines per chain when standard error is not a terminal.
@@ -90,7 +84,9 @@ class ProgressLog:
             time.sleep(poll)
             if self.clock() - min(self.last) < self.every or _finished(sampler):
                 continue
-            trace = sampler.inspect()
+            with warnings.catch_warnings():  # early on, a chain has no posterior draws yet: ArviZ warns
+                warnings.filterwarnings("ignore", message="More chains", category=UserWarning)
+                trace = sampler.inspect()
             done = sum(np.isfinite(trace[g].energy.values).sum(axis=1)
                        for g in ("warmup_sample_stats", "sample_stats") if g in trace.groups())
             diverging = trace.sample_stats.diverging.values.sum(axis=1) if "sample_stats" in trace.groups() \

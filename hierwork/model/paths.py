@@ -1,4 +1,4 @@
-"""Which exact model path a plan takes, and how much work its likelihood is per gradient.
+"""Which exact model path a plan takes, how much work one gradient is on it, and which NUTS engine samples it.
 
 * ``collapsed``: normal outcome whose factors form one nesting chain (one
   factor, or plot within farm within region ...): every level's effects are
@@ -19,13 +19,19 @@
   (:meth:`~hierwork.plan.families.base.Family.aggregate`);
 * ``plain``: every other case, the per-row model.
 
+The engine (:func:`choose_engine`) is the one predicted to sample faster:
+compile time plus the expected leapfrog steps times the cost of one step
+(the sampler's own work plus :func:`gradient_work` times a measured cost
+per unit), with constants measured by ``benchmarks/bench_engine.py``.
+
 The spec's ``sampling.path`` may ask for a slower exact path than the best one
 (or ``semi_collapsed`` where it applies), never one that does not apply. Light: NumPy only, so ``check`` reads
 the decision without importing PyMC.
 """
 from __future__ import annotations
 
-from dataclasses import replace
+import os
+from dataclasses import dataclass, replace
 
 import numpy as np
 
@@ -169,24 +175,118 @@ def likelihood_size(plan, path: str) -> int:
     if path == "reduced" and not plan.family.exact_normal:
         return count_cells(plan)
     if not plan.factors:
-        return plan.n
+        return 1 if path == "reduced" else plan.n
     if path in ("reduced", "semi_collapsed"):
         return len(np.unique(np.column_stack([f.index for f in plan.factors]), axis=0))
     return max(f.n_groups for f in plan.factors)
 
 
-# Above this many likelihood terms x columns, nutpie's faster gradient loop is
-# expected to outweigh its longer compile. A starting point, not yet tuned by
-# measurement (benchmarks/bench_scale.py can compare the engines).
-NUTPIE_FROM_CELLS = 200_000
+def sampled_dimension(plan, path: str) -> int:
+    """Parameters NUTS samples on a path: population coefficients and every sampled group effect (SDs aside)."""
+    factors = () if path == "collapsed" else sampled_plan(plan, path).factors
+    return plan.X.shape[1] + sum(f.n_groups * len(f.varying) for f in factors)
 
 
-def choose_engine(requested: str, cells: int) -> tuple[str, str]:
-    """Return (engine, reason) for a requested engine and a problem size."""
+#: Gradient cost per unit of work relative to the reduced path's, where a path's code does the same
+#: algebra in fewer passes: the semi-collapsed path's fused per-column loops, 4.1 ms against the
+#: reduced path's 55 ms on the same 73,000-row crossed cells (benchmarks/RESULTS.md).
+PATH_SPEED = {"semi_collapsed": 4.1 / 55}
+
+
+def gradient_work(plan, path: str) -> int:
+    """Work of one log-density gradient on a path, in element operations up to a constant factor.
+
+    Each likelihood term (:func:`likelihood_size`) costs its coefficients
+    (population columns plus every factor's varying terms), or their square
+    where the term is a cell of normal sufficient statistics (its quadratic
+    form), scaled by :data:`PATH_SPEED`; each sampled parameter costs one more.
+    Measured against the gradient's time in ``benchmarks/bench_engine.py``.
+    """
+    r = plan.X.shape[1] + sum(len(f.varying) for f in plan.factors)
+    per_term = r * r if plan.family.exact_normal and path != "plain" else r
+    terms = likelihood_size(plan, path) * per_term * PATH_SPEED.get(path, 1.0)
+    return int(terms) + sampled_dimension(plan, path)
+
+
+@dataclass(frozen=True)
+class EngineCost:
+    """What one NUTS engine costs on this kind of machine (``benchmarks/bench_engine.py``, RESULTS.md).
+
+    ``compile_s``: seconds to compile a model, compile cache warm; ``step_s``:
+    the sampler's own seconds per leapfrog step; ``work_s``: seconds per unit
+    of :func:`gradient_work` in one gradient.
+    """
+
+    compile_s: float
+    step_s: float
+    work_s: float
+
+    def seconds(self, work: int, steps: float) -> float:
+        return self.compile_s + steps * (self.step_s + work * self.work_s)
+
+
+#: CPU seconds (an idle machine's wall clock for one chain) measured by benchmarks/bench_engine.py on
+#: the crossed problem crossed-S (reduced path, 96 parameters, gradient work 18,142), RESULTS.md
+#: "Engine choice": compile with warm caches (nutpie's numba compile is not cached between
+#: processes, PyTensor's C modules are), the sampler's own cost per leapfrog step (step less
+#: gradient), and the gradient per unit of work (0.31 ms C, 0.16 ms numba there).
+COMPILE_PYMC, STEP_PYMC, WORK_PYMC = 9.3, 0.21e-3, 17e-9
+COMPILE_NUTPIE, STEP_NUTPIE, WORK_NUTPIE = 25.2, 0.03e-3, 8.6e-9
+#: Leapfrog steps per iteration at one dimension (:func:`leapfrog_steps`): 15 steps at 96
+#: parameters, 24 at 1,116 measured (2 x 2,000 iterations).
+STEPS_AT_1 = 4.5
+ENGINE_COSTS = {"pymc": EngineCost(compile_s=COMPILE_PYMC, step_s=STEP_PYMC, work_s=WORK_PYMC),
+                "nutpie": EngineCost(compile_s=COMPILE_NUTPIE, step_s=STEP_NUTPIE, work_s=WORK_NUTPIE)}
+
+
+def leapfrog_steps(dimension: int) -> float:
+    """Expected leapfrog steps per NUTS iteration in ``dimension`` parameters: ``STEPS_AT_1 * d^(1/4)``.
+
+    The optimal step size of HMC shrinks as ``d^(-1/4)`` (Beskos, Pillai,
+    Roberts, Sanz-Serna and Stuart 2013, Bernoulli 19, 1501-1534; quoted from
+    memory), so the path length in steps grows as ``d^(1/4)``; the factor is
+    fitted to the steps measured in ``benchmarks/bench_engine.py``.
+    """
+    return STEPS_AT_1 * max(dimension, 1) ** 0.25
+
+
+def default_cores(chains: int, requested: int | None) -> int:
+    """Processes for chains: the request, or one per chain up to the CPU count."""
+    if requested:
+        return requested
+    return max(1, min(chains, os.cpu_count() or 1))
+
+
+def choose_engine(requested: str, work: int, dimension: int = 1, iterations: int = 2000,
+                  rounds: int = 1) -> tuple[str, str]:
+    """The NUTS engine predicted to sample fastest, and why: ``(engine, reason)``.
+
+    Parameters
+    ----------
+    requested : {"auto", "pymc", "nutpie"}
+        The spec's ``sampling.engine``; anything but ``auto`` is kept.
+    work : int
+        :func:`gradient_work` of the model.
+    dimension : int
+        :func:`sampled_dimension` (sets the expected leapfrog steps).
+    iterations : int
+        Warm-up plus draws per chain.
+    rounds : int
+        Chains run one after another per core (chains / cores, rounded up).
+    """
     if requested != "auto":
         return requested, "set in the spec or on the command line"
-    if cells > NUTPIE_FROM_CELLS:
-        return "nutpie", (f"{cells:,} likelihood terms x design columns > {NUTPIE_FROM_CELLS:,}: "
-                          "gradient time dominates")
-    return "pymc", (f"{cells:,} likelihood terms x design columns <= {NUTPIE_FROM_CELLS:,}: "
-                    "compile time dominates")
+    steps = rounds * iterations * leapfrog_steps(dimension)
+    secs = {e: cost.seconds(work, steps) for e, cost in ENGINE_COSTS.items()}
+    engine = min(secs, key=secs.get)
+    other = "pymc" if engine == "nutpie" else "nutpie"
+    return engine, (f"predicted sampling {_secs(secs[engine])} against {_secs(secs[other])} on {other}, "
+                    f"compile included ({steps / 1e3:,.0f}k leapfrog steps per core, gradient work {_work(work)})")
+
+
+def _secs(s: float) -> str:
+    return f"{s:.0f} s" if s < 600 else f"{s / 60:.0f} min"
+
+
+def _work(w: int) -> str:
+    return f"{w / 1e6:.1f}M" if w >= 1e6 else f"{w / 1e3:.0f}k" if w >= 1e3 else str(w)
