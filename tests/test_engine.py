@@ -50,7 +50,7 @@ def test_plain_path_work_is_rows_times_terms_plus_the_sampled_parameters(tmp_pat
 def test_normal_paths_work_is_cells_times_terms_squared(tmp_path):
     report = _check(tmp_path, groups=("farm", "variety"))
     plan = report.plan
-    assert report.path == "reduced"
+    assert report.path == "semi_collapsed"
     farm, variety = plan.factors
     cells = len(set(zip(farm.index, variety.index)))  # closed form: the crossed pairs present
     r = plan.X.shape[1] + 2

@@ -95,7 +95,7 @@ def test_path_choice(wheat_plan, tmp_path):
     assert paths.best_path(hierwork.check(ROOT / "model_specs" / "depot_delays.yaml").plan)[0] == "reduced"
     frame = pd.DataFrame({"y": np.arange(12.0), "a": list("uvw") * 4, "c": list("pq") * 6})
     crossed = _plan(tmp_path, frame, {"outcome": {"column": "y"}, "groups": {"a": {}, "c": {}}})
-    assert paths.best_path(crossed)[0] == "reduced"
+    assert paths.best_path(crossed)[0] == "semi_collapsed"
     assert paths.nesting_chain(crossed) is None
 
 

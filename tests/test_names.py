@@ -107,9 +107,8 @@ _CASES = {
     # group-level predictor, varying residual spread) and every family parameter once.
     "normal-collapsed": ("normal", "", "depot: {column: depot, within: region, varying: [intercept, load]}\n"
                                        "  region: {column: region}", ""),
-    "normal-semi_collapsed": ("normal", "", "depot: {column: depot}\n  shift: {column: shift}",
-                              "  path: semi_collapsed\n"),
-    "normal-reduced": ("normal", "", "depot: {column: depot}\n  shift: {column: shift}", ""),
+    "normal-semi_collapsed": ("normal", "", "depot: {column: depot}\n  shift: {column: shift}", ""),
+    "normal-reduced": ("normal", "", "depot: {column: depot}\n  shift: {column: shift}", "  path: reduced\n"),
     "normal-spread": ("normal", "", "depot: {column: depot, spread: varying}", ""),
     "binomial-centred": ("binomial", ", trials: size",
                          "depot: {column: depot, predictors: [capacity], parameterisation: centred}", ""),

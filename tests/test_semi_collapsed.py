@@ -110,18 +110,19 @@ def test_semi_collapsed_draws_follow_dense_conditional(tmp_path):
 def test_path_choice_and_requests(tmp_path):
     plan = _crossed(tmp_path)
     path, reason = paths.best_path(plan)
-    assert path == "reduced" and "semi_collapsed integrates courier out" in reason  # auto: not yet the default
+    assert path == "semi_collapsed" and "courier (the most groups) integrated out" in reason
     assert paths.integrated_factor(plan).name == "courier"
     assert [g.name for g in paths.sampled_plan(plan, "semi_collapsed").factors] == ["address", "region"]
     assert paths.sampled_plan(plan, "reduced") is plan
-    asked = hierwork.check(tmp_path / "spec.yaml", {"sampling.path": "semi_collapsed"})
-    assert paths.resolve_path(asked.plan.spec, plan) == ("semi_collapsed", "set in the spec")
-    lines = {line.split()[0]: line for line in asked.text().splitlines() if " effects " in line}
+    auto = hierwork.check(tmp_path / "spec.yaml")
+    assert auto.path == "semi_collapsed"
+    lines = {line.split()[0]: line for line in auto.text().splitlines() if " effects " in line}
     assert "integrated out: exact on the semi-collapsed path" in lines["courier"]
     assert "sampled" in lines["address"] and "sampled" in lines["region"]
     # a slower exact path may be asked for; semi_collapsed on a non-normal or factor-less model may not
-    spec = hierwork.load_spec(tmp_path / "spec.yaml", {"sampling.path": "plain"})
-    assert paths.resolve_path(spec, plan) == ("plain", "set in the spec")
+    for slower in ("reduced", "plain"):
+        spec = hierwork.load_spec(tmp_path / "spec.yaml", {"sampling.path": slower})
+        assert paths.resolve_path(spec, plan) == (slower, "set in the spec")
     frame = pd.DataFrame({"y": np.arange(12) % 4, "a": list("uvw") * 4, "c": list("pq") * 6})
     with pytest.raises(hierwork.errors.SpecError, match="path 'semi_collapsed' does not apply"):
         _plan(tmp_path, frame, {"outcome": {"column": "y", "family": "poisson"},

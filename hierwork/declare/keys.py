@@ -124,7 +124,7 @@ SPEC_KEYS = {
                     "the factor with most groups integrated out, the others sampled), reduced (per "
                     "cell: sufficient statistics for normal, summed identical rows for bernoulli, binomial "
                     "and poisson), or per-row; 'auto' takes the fastest exact one that applies "
-                    "(semi_collapsed only when asked for: docs/fast-path.md).",
+                    "(docs/fast-path.md).",
                     "auto", choices=("auto", "collapsed", "semi_collapsed", "reduced", "plain")),
     }),
     "gate": Key("section", "Convergence checks that must pass before results count.", {}, fields={

@@ -3,15 +3,16 @@
 * ``collapsed``: normal outcome whose factors form one nesting chain (one
   factor, or plot within farm within region ...): every level's effects are
   integrated out (:mod:`hierwork.model.collapsed`);
-* ``reduced``: normal outcome with crossed factors (or none): the group
-  effects are sampled, the likelihood evaluated from per-cell sufficient
-  statistics, exact and O(cells) (:func:`hierwork.model.rowwise.reduced_normal_likelihood`);
-* ``semi_collapsed``, only when the spec asks for it: normal outcome with
-  factors: the factor with the most groups is integrated out exactly given the
-  others' effects, which are sampled (:mod:`hierwork.model.semi_collapsed`).
-  Cheaper per gradient on large crossed designs, but on the crossed designs
-  measured so far (24 x 6 plates, machines, 73,000 rows) it mixed worse than
-  ``reduced`` (R-hat 1.013, a divergence), so ``auto`` does not take it yet;
+* ``semi_collapsed``: normal outcome with crossed factors: the factor with
+  the most groups is integrated out exactly given the others' effects, which
+  are sampled (:mod:`hierwork.model.semi_collapsed`);
+* ``reduced``: normal outcome without factors, or with crossed factors when
+  the spec asks for it: the group effects are sampled, the likelihood
+  evaluated from per-cell sufficient statistics, exact and O(cells)
+  (:func:`hierwork.model.rowwise.reduced_normal_likelihood`). On crossed
+  designs it samples more parameters at a higher cost per gradient than
+  ``semi_collapsed`` and mixed no better where measured
+  (benchmarks/RESULTS.md);
 * ``reduced`` also for counts and proportions (bernoulli, binomial, poisson)
   when rows share predictors and group memberships: each such cell is one
   binomial (successes and trials summed) or Poisson (counts and exposures
@@ -74,10 +75,9 @@ def best_path(plan) -> tuple[str, str]:
         return "collapsed", (f"normal outcome with {what}: group effects integrated out exactly, "
                              "then drawn from their conditional normal")
     f = integrated_factor(plan)
-    return "reduced", ("normal outcome with crossed factors: likelihood from per-cell sufficient statistics, "
-                       f"group effects sampled (sampling.path: semi_collapsed integrates {f.name} out instead: "
-                       "cheaper per gradient on large designs, but it mixed worse on the crossed designs "
-                       "measured so far, benchmarks/RESULTS.md)")
+    return "semi_collapsed", (f"normal outcome with crossed factors: {f.name} (the most groups) integrated out "
+                              "exactly given the other factors' effects, which are sampled, then drawn from "
+                              "its conditional normal")
 
 
 def semi_collapsed_applies(plan) -> bool:
