@@ -105,6 +105,11 @@ class Rows:
     def n(self) -> int:
         return self.X.shape[0]
 
+    def subset(self, index) -> "Rows":
+        """The rows at ``index`` (a slice or positions)."""
+        return Rows(self.X[index], [(name, rows[index], cols, W) for name, rows, cols, W in self.groups],
+                    self.outcome.rows(index))
+
 
 def rows_of(plan) -> Rows:
     """The fitted rows of a plan."""
@@ -140,10 +145,7 @@ def distinct_rows(rows: Rows, outcome: bool = True) -> Distinct:
     values = [np.broadcast_to(np.asarray(v, dtype=float), (rows.n,)) for v in
               (getattr(rows.outcome, name) for name in columns) if v is not None]
     cells = row_cells(np.column_stack([rows.X, *values]), [index for _, index, _, _ in rows.groups])
-    first = cells.first
-    groups = [(name, index[first], cols, W) for name, index, cols, W in rows.groups]
-    return Distinct(Rows(rows.X[first], groups, rows.outcome.rows(first)), cells.cell,
-                    np.bincount(cells.cell, minlength=len(first)))
+    return Distinct(rows.subset(cells.first), cells.cell, np.bincount(cells.cell, minlength=cells.n_cells))
 
 
 def linear_predictor(draws: Draws, rows: Rows, sl: slice = slice(None)) -> np.ndarray:

@@ -43,7 +43,7 @@ from hierwork.inference import seeds
 from hierwork.inference.convergence import ess_mean
 from hierwork.plan.design import Design, Term
 from hierwork.plan.plan import ModelPlan
-from hierwork.results.draws import Rows, distinct_rows, draws_of, pointwise_log_likelihood, rows_of
+from hierwork.results.draws import distinct_rows, draws_of, pointwise_log_likelihood, rows_of
 from hierwork.results import predictive
 
 #: Pareto k above which a row's PSIS-LOO estimate is unreliable (Vehtari, Gelman and Gabry 2017).
@@ -155,8 +155,7 @@ def row_loo(idata, plan: ModelPlan):
     step = max(1, predictive.MAX_CELLS // draws.n)
     for start in range(0, U, step):
         sl = slice(start, min(start + step, U))
-        part = Rows(distinct.rows.X[sl], [(name, index[sl], cols, W) for name, index, cols, W in distinct.rows.groups],
-                    distinct.rows.outcome.rows(sl))
+        part = distinct.rows.subset(sl)
         ll = pointwise_log_likelihood(draws, part, plan.family)
         result = _loo(az.InferenceData(log_likelihood=xr.Dataset(
             {"y": (("chain", "draw", "row"), ll.reshape(draws.shape + (part.n,)))})), reff=reff)
@@ -164,7 +163,7 @@ def row_loo(idata, plan: ModelPlan):
         lppd_u[sl] = special.logsumexp(ll, axis=0) - np.log(draws.n)
     n, w = plan.n, distinct.counts
     elpd = float(w @ loo_u)
-    se = float(np.sqrt(n * (w @ (loo_u - elpd / n) ** 2) / n))
+    se = float(np.sqrt(n * np.average((loo_u - elpd / n) ** 2, weights=w)))  # sqrt(n var(loo_i))
     rows = {"row": np.arange(n)}
     pointwise = [xr.DataArray(loo_u[distinct.inverse], dims="row", coords=rows, name="loo_i"),
                  xr.DataArray(k_u[distinct.inverse], dims="row", coords=rows)]
