@@ -18,12 +18,12 @@ import pytest
 from scipy import stats
 
 import predictive_kit as kit
-from hierwork.results import predictive
+from hierwork.results import loo, predictive
 from hierwork.pipeline import check
 from hierwork.model.collapsed import add_group_effects
 from hierwork.model.rowwise import build_model
 from hierwork.results import prior_predictive
-from hierwork.results.draws import draws_of, pointwise_log_likelihood, rows_of
+from hierwork.results.draws import distinct_rows, draws_of, pointwise_log_likelihood, rows_of
 
 pytestmark = pytest.mark.slow  # every test here fits a model (MCMC)
 
@@ -135,14 +135,15 @@ def test_over_budget_thins_and_falls_back_to_group_loo(rail, monkeypatch):
     plan, idata = rail
     idata = add_group_effects(idata.copy(), plan, 2, group_log_likelihood=True)
     monkeypatch.setattr(predictive, "MAX_CELLS", 2000)  # 600 draws x 18 rows > 2000
+    monkeypatch.setattr(loo, "LOO_CELLS", 2000)  # 600 draws x 18 distinct rows > 2000
     files = kit.augment(idata, plan, 1)
     assert idata.posterior_predictive.attrs["thin"] == 6
     assert idata.posterior_predictive["y"].shape == (2, 50, plan.n)
     assert "log_likelihood" not in idata.groups() or "y" not in idata.log_likelihood
     rows = files["predictive_rows.csv"]
     assert len(rows) == plan.n and {"pred_mean", "lower_0.94", "upper_0.94"} <= set(rows.columns)
-    loo = json.loads(files["loo.json"])
-    assert loo["unit"].startswith("rail") and loo["models"]["partial_pooling"]["n"] == 6
+    report = json.loads(files["loo.json"])
+    assert report["unit"].startswith("rail") and report["models"]["partial_pooling"]["n"] == 6
 
 
 def test_prior_predictive_flags_absurd_priors(tmp_path):
@@ -189,16 +190,19 @@ def test_prior_predictive_fails_a_third_of_probabilities_at_the_edges(tmp_path):
 
 def test_over_work_budget_summaries_use_thinned_draws(rail, monkeypatch):
     plan, idata = rail
-    monkeypatch.setattr(predictive, "SUMMARY_CELLS", 18 * 150)  # 2,000 draws x 18 rows > 2,700
+    monkeypatch.setattr(predictive, "SUMMARY_CELLS", 18 * 150)  # 600 draws x 6 distinct rows > 2,700
     monkeypatch.setattr(predictive, "MAX_CELLS", 18 * 40)
     idata = idata.copy()
     files = kit.augment(idata, plan, 1)
     per_chain = idata.posterior.sizes["draw"]
-    step = predictive.summary_thin(2 * per_chain, per_chain, plan.n)
+    keys = distinct_rows(rows_of(plan), outcome=False)  # rows of one rail share their predictive distribution
+    assert keys.rows.n == 6
+    step = predictive.summary_thin(2 * per_chain, per_chain, keys.rows.n)
     report = json.loads(files["calibration.json"])
     assert report["draws_used"] == 2 * len(range(0, per_chain, step)) >= predictive.MIN_SUMMARY_DRAWS
     thin = idata.posterior_predictive.attrs["thin"]
-    assert thin % step == 0 and idata.posterior_predictive["y"].shape == (2, len(range(0, per_chain, thin)), plan.n)
+    assert thin == -(-2 * per_chain * plan.n // predictive.MAX_CELLS)
+    assert idata.posterior_predictive["y"].shape == (2, len(range(0, per_chain, thin)), plan.n)
     cover = {lv["nominal"]: lv["coverage"] for lv in report["levels"]}
     assert cover[0.94] >= 0.8 and 0.2 <= cover[0.5] <= 0.9
 

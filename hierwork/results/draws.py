@@ -13,7 +13,7 @@ outcomes and means. Work is streamed over row chunks of about
 """
 from __future__ import annotations
 
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, fields
 
 import numpy as np
 
@@ -105,11 +105,47 @@ class Rows:
     def n(self) -> int:
         return self.X.shape[0]
 
+    def subset(self, index) -> "Rows":
+        """The rows at ``index`` (a slice or positions)."""
+        return Rows(self.X[index], [(name, rows[index], cols, W) for name, rows, cols, W in self.groups],
+                    self.outcome.rows(index))
+
 
 def rows_of(plan) -> Rows:
     """The fitted rows of a plan."""
     return Rows(plan.X, [(f.name, f.index, list(f.varying_cols), f.W if f.predictors else None)
                          for f in plan.factors], plan.outcome)
+
+
+@dataclass(frozen=True)
+class Distinct:
+    """Rows that share every input of a per-row quantity, each represented once.
+
+    ``rows`` the U representatives, ``inverse`` (n,) the representative of each
+    row, ``counts`` (U,) the rows each represents.
+    """
+
+    rows: Rows
+    inverse: np.ndarray
+    counts: np.ndarray
+
+
+def distinct_rows(rows: Rows, outcome: bool = True) -> Distinct:
+    """Rows with identical design, group memberships and outcome columns, once each.
+
+    Such rows have the same linear predictor at every draw and so the same
+    predictive distribution; with ``outcome`` (the observed outcome in the key
+    too) also the same log density. Per-row work on counts and proportions
+    (1,000,000 bernoulli rows in a few thousand cells) is then done once per
+    representative and gathered, with the same result.
+    """
+    from hierwork.model.cells import row_cells
+
+    columns = [f.name for f in fields(rows.outcome) if f.name != "levels" and (outcome or f.name != "y")]
+    values = [np.broadcast_to(np.asarray(v, dtype=float), (rows.n,)) for v in
+              (getattr(rows.outcome, name) for name in columns) if v is not None]
+    cells = row_cells(np.column_stack([rows.X, *values]), [index for _, index, _, _ in rows.groups])
+    return Distinct(rows.subset(cells.first), cells.cell, np.bincount(cells.cell, minlength=cells.n_cells))
 
 
 def linear_predictor(draws: Draws, rows: Rows, sl: slice = slice(None)) -> np.ndarray:

@@ -37,12 +37,13 @@ from hierwork import runtime  # noqa: F401  (before ArviZ)
 import arviz as az
 import numpy as np
 import xarray as xr
+from scipy import special
 
 from hierwork.inference import seeds
 from hierwork.inference.convergence import ess_mean
 from hierwork.plan.design import Design, Term
 from hierwork.plan.plan import ModelPlan
-from hierwork.results.draws import draws_of, pointwise_log_likelihood, rows_of
+from hierwork.results.draws import distinct_rows, draws_of, pointwise_log_likelihood, rows_of
 from hierwork.results import predictive
 
 #: Pareto k above which a row's PSIS-LOO estimate is unreliable (Vehtari, Gelman and Gabry 2017).
@@ -124,13 +125,52 @@ def _fit_baseline(plan: ModelPlan, spec, seed: int, centre: bool):
     return run_sampler(build_model(plan, centre=centre), settings, engine, progress=False)
 
 
-def _pointwise(idata, plan: ModelPlan):
-    """The posterior with the pointwise log-likelihood of ``plan``'s rows (ArviZ takes the
-    relative efficiency of the importance weights from the posterior's ESS)."""
+#: Draws x distinct rows of pointwise log-likelihood evaluated for row-level LOO at most (in chunks
+#: of at most :data:`hierwork.results.predictive.MAX_CELLS` numbers); above it row-level LOO is skipped.
+LOO_CELLS = 200_000_000
+
+
+def row_loo(idata, plan: ModelPlan):
+    """PSIS-LOO of every row of ``plan`` under ``idata``'s posterior, or None above :data:`LOO_CELLS`.
+
+    Rows with identical predictors, groups and outcome columns
+    (:func:`~hierwork.results.draws.distinct_rows`) have identical pointwise
+    log-likelihood draws, and PSIS works on each row's draws alone, so their
+    Pareto k and ``loo_i`` are identical: both are computed once per distinct
+    row (``arviz.loo``) and gathered; ``elpd_loo``, its SE (``sqrt(n var(loo_i))``)
+    and ``p_loo`` (``lppd - elpd_loo``) are ArviZ's sums over the rows.
+
+    Returns
+    -------
+    arviz.ELPDData or None
+        As ``arviz.loo(..., pointwise=True)`` on the per-row log-likelihood.
+    """
     draws = draws_of(idata.posterior, plan.factors, plan.family.parameters(plan.outcome))
-    ll = pointwise_log_likelihood(draws, rows_of(plan), plan.family)
-    return az.InferenceData(posterior=idata.posterior, log_likelihood=xr.Dataset(
-        {"y": (("chain", "draw", "row"), ll.reshape(draws.shape + (plan.n,)))}))
+    distinct = distinct_rows(rows_of(plan))
+    U = distinct.rows.n
+    if draws.n * U > LOO_CELLS:
+        return None
+    reff = relative_efficiency(idata.posterior)
+    loo_u, lppd_u, k_u, result = np.empty(U), np.empty(U), np.empty(U), None
+    step = max(1, predictive.MAX_CELLS // draws.n)
+    for start in range(0, U, step):
+        sl = slice(start, min(start + step, U))
+        part = distinct.rows.subset(sl)
+        ll = pointwise_log_likelihood(draws, part, plan.family)
+        result = _loo(az.InferenceData(log_likelihood=xr.Dataset(
+            {"y": (("chain", "draw", "row"), ll.reshape(draws.shape + (part.n,)))})), reff=reff)
+        loo_u[sl], k_u[sl] = result.loo_i.values, result.pareto_k.values
+        lppd_u[sl] = special.logsumexp(ll, axis=0) - np.log(draws.n)
+    n, w = plan.n, distinct.counts
+    elpd = float(w @ loo_u)
+    se = float(np.sqrt(n * np.average((loo_u - elpd / n) ** 2, weights=w)))  # sqrt(n var(loo_i))
+    rows = {"row": np.arange(n)}
+    pointwise = [xr.DataArray(loo_u[distinct.inverse], dims="row", coords=rows, name="loo_i"),
+                 xr.DataArray(k_u[distinct.inverse], dims="row", coords=rows)]
+    return az.ELPDData(data=[elpd, se, float(w @ lppd_u) - elpd, draws.n, n, bool((k_u > result.good_k).any()),
+                             *pointwise, result.scale, result.good_k],
+                       index=["elpd_loo", "se", "p_loo", "n_samples", "n_data_points", "warning", "loo_i",
+                              "pareto_k", "scale", "good_k"])
 
 
 #: Rows with Pareto k above PARETO_K_BAD listed by name in loo.json (highest k first).
@@ -153,10 +193,11 @@ def _loo_record(result, plan: ModelPlan | None = None) -> dict:
     return record
 
 
-def _loo(idata, var_name: str = "y"):
+def _loo(idata, var_name: str = "y", reff: float | None = None):
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")  # Pareto k warnings are counted in loo.json instead
-        return az.loo(idata, pointwise=True, var_name=var_name, reff=relative_efficiency(idata.posterior))
+        return az.loo(idata, pointwise=True, var_name=var_name,
+                      reff=relative_efficiency(idata.posterior) if reff is None else reff)
 
 
 def relative_efficiency(posterior) -> float:
@@ -179,8 +220,9 @@ def pooling_comparison(idata, plan: ModelPlan, spec, seed: int) -> dict:
     Parameters
     ----------
     idata : arviz.InferenceData
-        The run's posterior, with ``log_likelihood["y"]`` when within the memory
-        budget (:func:`hierwork.results.predictive.augment` adds it).
+        The run's posterior. Row-level LOO (:func:`row_loo`) is computed from its
+        draws; above the work budget, leave-one-group-out from
+        ``log_likelihood["y_by_<top factor>"]`` when the collapsed path stored it.
     plan : ModelPlan
     spec : Spec
         ``estimates.compare_pooling`` switches the baseline fits on.
@@ -195,13 +237,14 @@ def pooling_comparison(idata, plan: ModelPlan, spec, seed: int) -> dict:
     """
     report = {"format": "hierwork-loo/1", "method": "PSIS-LOO (Vehtari, Gelman and Gabry 2017)",
               "pareto_k_bad": PARETO_K_BAD, "models": {}, "notes": []}
-    ll = getattr(idata, "log_likelihood", None)
-    if ll is None or "y" not in ll:
+    partial = row_loo(idata, plan)
+    if partial is None:
         top = next((f for f in plan.factors if f.parent is None), None)
         name = None if top is None else f"y_by_{top.name}"
-        size = idata.posterior.sizes["chain"] * idata.posterior.sizes["draw"] * plan.n
-        why = (f"row-level LOO skipped: draws x rows = {size:,} exceeds the memory budget of "
-               f"{predictive.MAX_CELLS:,} numbers")
+        ll = getattr(idata, "log_likelihood", None)
+        size = idata.posterior.sizes["chain"] * idata.posterior.sizes["draw"] * distinct_rows(rows_of(plan)).rows.n
+        why = (f"row-level LOO skipped: draws x distinct rows = {size:,} exceeds the work budget of "
+               f"{LOO_CELLS:,} log densities")
         if ll is not None and name in ll:
             report["models"]["partial_pooling"] = _loo_record(_loo(idata, name))
             report["unit"] = f"{top.name} (leave one group out, effects integrated out)"
@@ -210,14 +253,16 @@ def pooling_comparison(idata, plan: ModelPlan, spec, seed: int) -> dict:
             report["notes"].append(why + "; refit with fewer draws to get it")
         return {"loo.json": json.dumps(report, indent=2) + "\n"}
     report["unit"] = "row"
-    fitted = {"partial_pooling": az.InferenceData(posterior=idata.posterior, log_likelihood=ll[["y"]])}
+    results = {"partial_pooling": partial}
     if spec.values["estimates"].get("compare_pooling") and plan.factors:
         cp_seed, np_seed = seeds.child_seeds(seed, "pooling_baselines", 2)
         cp_plan, np_plan = complete_pooling_plan(plan), no_pooling_plan(plan)
-        fitted["complete_pooling"] = _pointwise(_fit_baseline(cp_plan, spec, cp_seed, centre=True), cp_plan)
-        fitted["no_pooling"] = _pointwise(_fit_baseline(np_plan, spec, np_seed, centre=False), np_plan)
+        results["complete_pooling"] = row_loo(_fit_baseline(cp_plan, spec, cp_seed, centre=True), cp_plan)
+        results["no_pooling"] = row_loo(_fit_baseline(np_plan, spec, np_seed, centre=False), np_plan)
+        for name in [name for name, r in results.items() if r is None]:
+            del results[name]
+            report["notes"].append(f"{name} not compared: its row-level LOO exceeds the work budget")
         report["baseline_draws"] = min(spec.sampling["draws"], BASELINE_MAX_DRAWS)
-    results = {name: _loo(data) for name, data in fitted.items()}
     report["models"] = {name: _loo_record(r, plan if name == "partial_pooling" else None)
                         for name, r in results.items()}
     files = {}

@@ -39,9 +39,9 @@ import pandas as pd
 import scipy.sparse as sp
 
 from hierwork.plan.plan import ModelPlan
-from hierwork.results.draws import chunks, draws_of, linear_predictor, rows_of, within_budget
+from hierwork.results.draws import chunks, distinct_rows, draws_of, linear_predictor, rows_of, within_budget
 
-#: Draws x rows evaluated for the pooling weights; above it, evenly spaced draws (at least 100).
+#: Draws x distinct rows evaluated for the pooling weights; above it, evenly spaced draws (at least 100).
 WEIGHT_ROW_CELLS = 50_000_000
 #: Draws x groups x terms^2 of information matrices held at once.
 WEIGHT_GROUP_CELLS = 20_000_000
@@ -54,17 +54,19 @@ def pooling_weights(idata, plan: ModelPlan) -> dict:
     family, ref = plan.family, plan.estimands
     draws = draws_of(idata.posterior, plan.factors, family.parameters(plan.outcome))
     widest = max(f.n_groups * len(f.varying) ** 2 for f in plan.factors)
-    keep = min(within_budget(draws.n, plan.n, WEIGHT_ROW_CELLS), within_budget(draws.n, widest, WEIGHT_GROUP_CELLS),
+    distinct = distinct_rows(rows_of(plan))  # identical rows carry identical information
+    rows = distinct.rows
+    keep = min(within_budget(draws.n, rows.n, WEIGHT_ROW_CELLS), within_budget(draws.n, widest, WEIGHT_GROUP_CELLS),
                key=len)
-    draws, rows = draws.subset(keep), rows_of(plan)
+    draws = draws.subset(keep)
     info = {f.name: np.zeros((draws.n, f.n_groups, len(f.varying), len(f.varying))) for f in plan.factors}
-    for sl in chunks(draws.n, plan.n):
+    for sl in chunks(draws.n, rows.n):
         eta = linear_predictor(draws, rows, sl)
-        w = np.broadcast_to(family.information(eta, plan.outcome.rows(sl), draws.family_params(rows, sl)), eta.shape)
-        for f in plan.factors:
-            Z = plan.X[sl][:, list(f.varying_cols)] - ref.x[list(f.varying_cols)]
+        w = np.broadcast_to(family.information(eta, rows.outcome.rows(sl), draws.family_params(rows, sl)), eta.shape)
+        for f, (_, index, _, _) in zip(plan.factors, rows.groups):
+            Z = rows.X[sl][:, list(f.varying_cols)] - ref.x[list(f.varying_cols)]
             Z[:, 0] = 1.0
-            S = sp.csr_matrix((np.ones(Z.shape[0]), (np.arange(Z.shape[0]), f.index[sl])),
+            S = sp.csr_matrix((distinct.counts[sl].astype(float), (np.arange(Z.shape[0]), index[sl])),
                               shape=(Z.shape[0], f.n_groups))
             for a in range(Z.shape[1]):
                 for c in range(a, Z.shape[1]):

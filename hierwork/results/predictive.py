@@ -8,13 +8,14 @@ Memory budget: at most ``MAX_CELLS`` = 2e7 numbers (160 MB as float64) of
 draws x rows are kept for any one array (posterior predictive draws, pointwise
 log-likelihood); the work itself runs in row chunks
 (:data:`hierwork.results.draws.CHUNK_CELLS`). Above the budget the posterior
-predictive is thinned to fit (every k-th draw of each chain) and per-row
-summaries are written to ``predictive_rows.csv``. Per-row summaries and
-calibration use every draw up to ``SUMMARY_CELLS`` = 2e8 draws x rows and evenly
-thinned draws above it (at least 100; the number is in ``calibration.json`` as
-``draws_used``); row-level LOO is then replaced by leave-one-group-out on the
-top factor when the collapsed path stored ``log_likelihood["y_by_<factor>"]``,
-or skipped with the reason in ``loo.json`` (:mod:`hierwork.results.loo`).
+predictive is thinned to fit (every k-th draw of each chain), the pointwise
+log-likelihood is not stored, and per-row summaries are written to
+``predictive_rows.csv``. Rows with identical predictors, groups and outcome
+columns are summarised once (:func:`~hierwork.results.draws.distinct_rows`):
+per-row summaries and calibration use every draw up to ``SUMMARY_CELLS`` = 2e8
+draws x distinct rows and evenly thinned draws above it (at least 100; the
+number is in ``calibration.json`` as ``draws_used``). Row-level LOO has its own
+work budget (:mod:`hierwork.results.loo`).
 """
 from __future__ import annotations
 
@@ -27,11 +28,12 @@ import pandas as pd
 import xarray as xr
 
 from hierwork.inference import seeds
-from hierwork.results.draws import Draws, Rows, chunks, draws_of, linear_predictor, rows_of
+from hierwork.results.draws import (Draws, Rows, chunks, distinct_rows, draws_of, linear_predictor,
+                                    pointwise_log_likelihood, rows_of)
 
 #: Largest draws x rows array kept in memory or on disk (numbers).
 MAX_CELLS = 20_000_000
-#: Draws x rows summarised per row (mean, SD, intervals, calibration); above it the
+#: Draws x distinct rows summarised (mean, SD, intervals, calibration); above it the
 #: summaries use evenly thinned draws, at least ``MIN_SUMMARY_DRAWS`` of them.
 SUMMARY_CELLS = 200_000_000
 MIN_SUMMARY_DRAWS = 100
@@ -79,39 +81,45 @@ def posterior_predictive(draws: Draws, rows: Rows, family, y, rng: np.random.Gen
     """Replicate the outcome for every draw and row, streaming over row chunks.
 
     Keeps at most :data:`MAX_CELLS` numbers per array (see the module docstring).
-    Per-row summaries use every :func:`summary_thin`-th draw of each chain; their
-    interval bounds are type-6 quantiles (Hyndman and Fan 1996), whose central
-    interval holds a new exchangeable draw with probability close to nominal
-    whatever the number of draws (type 7 would fall short with few draws).
+    Rows with identical predictors, groups and outcome columns share one
+    predictive distribution (:func:`~hierwork.results.draws.distinct_rows`), so
+    the per-row summaries are computed once per such set of rows, from every
+    :func:`summary_thin`-th draw of each chain (the budget counts the distinct
+    rows), and the log-likelihood once per distinct row and outcome; the stored
+    replicated outcomes are drawn for every row independently. Interval bounds
+    are type-6 quantiles (Hyndman and Fan 1996), whose central interval holds a
+    new exchangeable draw with probability close to nominal whatever the number
+    of draws (type 7 would fall short with few draws).
     """
     D, n = draws.n, rows.n
     chains, per_chain = draws.shape
-    step = summary_thin(D, per_chain, n)
-    thin = step * math.ceil(math.ceil(D * n / MAX_CELLS) / step)  # stored draws are among the summarised
-    used = np.arange(D).reshape(chains, per_chain)[:, ::step]
-    keep = np.isin(used.ravel(), np.arange(D).reshape(chains, per_chain)[:, ::thin].ravel())
-    sub = draws.subset(used.ravel())
-    replicated = np.empty((chains, -(-per_chain // thin), n))
-    keep_ll = log_lik and y is not None and D * n <= MAX_CELLS
-    ll = np.empty((D, n)) if keep_ll else None
+    flat = np.arange(D).reshape(chains, per_chain)
+    keys = distinct_rows(rows, outcome=False)
+    sub = draws.subset(flat[:, ::summary_thin(D, per_chain, keys.rows.n)].ravel())
     qs, levels = _quantile_levels(interval)
-    summary = {"mean": np.empty(n), "sd": np.empty(n), "q": np.empty((len(qs), n))}
-    for sl in chunks(sub.n, n):
-        eta = linear_predictor(sub, rows, sl)
-        part = rows.outcome.rows(sl)
-        params = sub.family_params(rows, sl)
-        rep = family.simulate(rng, eta, part, params)
-        replicated[..., sl] = rep[keep].reshape(replicated.shape[:2] + (-1,))
+    summary = {"mean": np.empty(keys.rows.n), "sd": np.empty(keys.rows.n), "q": np.empty((len(qs), keys.rows.n))}
+    for sl in chunks(sub.n, keys.rows.n):
+        rep = family.simulate(rng, linear_predictor(sub, keys.rows, sl), keys.rows.outcome.rows(sl),
+                              sub.family_params(keys.rows, sl))
         summary["mean"][sl] = rep.mean(axis=0)
         summary["sd"][sl] = rep.std(axis=0, ddof=1)
         summary["q"][:, sl] = np.quantile(rep, qs, axis=0, method="weibull")
-        if keep_ll:
-            ll[:, sl] = family.log_density(y[sl], eta, part, params)
-    table = {"pred_mean": summary["mean"], "pred_sd": summary["sd"]}
+    thin = math.ceil(D * n / MAX_CELLS)
+    kept = draws.subset(flat[:, ::thin].ravel())
+    eta = linear_predictor(kept, keys.rows)  # (kept draws, distinct rows): within MAX_CELLS
+    replicated = np.empty((kept.n, n))
+    for sl in chunks(kept.n, n):
+        replicated[:, sl] = family.simulate(rng, eta[:, keys.inverse[sl]], rows.outcome.rows(sl),
+                                            kept.family_params(rows, sl))
+    ll = None
+    if log_lik and y is not None and D * n <= MAX_CELLS:
+        observed = distinct_rows(rows)
+        ll = pointwise_log_likelihood(draws, observed.rows, family)[:, observed.inverse].reshape(chains, per_chain, n)
+    table = {"pred_mean": summary["mean"][keys.inverse], "pred_sd": summary["sd"][keys.inverse]}
     for k, lv in enumerate(levels):
-        table[f"lower_{lv:g}"], table[f"upper_{lv:g}"] = summary["q"][2 * k], summary["q"][2 * k + 1]
-    return PosteriorPredictive(replicated, thin, None if ll is None else ll.reshape(chains, per_chain, n),
-                               pd.DataFrame(table), levels, sub.n)
+        table[f"lower_{lv:g}"] = summary["q"][2 * k][keys.inverse]
+        table[f"upper_{lv:g}"] = summary["q"][2 * k + 1][keys.inverse]
+    return PosteriorPredictive(replicated.reshape(chains, -1, n), thin, ll, pd.DataFrame(table), levels, sub.n)
 
 
 def calibration(y, table: pd.DataFrame, factors) -> dict:

@@ -46,7 +46,7 @@ DELTA = 0.01
 THRESHOLD = 0.05
 #: Columns of sensitivity.csv.
 COLUMNS = ("parameter", "prior_sensitivity", "likelihood_sensitivity", "diagnosis", "pareto_k")
-#: Draws x rows of likelihood evaluations at most; beyond, evenly spaced draws (at least MIN_DRAWS) are used.
+#: Draws x distinct rows of likelihood evaluations at most; beyond, evenly spaced draws (at least MIN_DRAWS) are used.
 LIKELIHOOD_CELLS = 200_000_000
 MIN_DRAWS = 1000
 #: The words of the diagnosis column.
@@ -96,19 +96,22 @@ def log_prior(idata, plan: ModelPlan) -> np.ndarray:
     return total
 
 
-def log_likelihood(idata, plan: ModelPlan, keep: np.ndarray | None = None) -> np.ndarray:
+def log_likelihood(idata, plan: ModelPlan, keep: np.ndarray | None = None, distinct=None) -> np.ndarray:
     """Log likelihood of all fitted rows at the draws ``keep`` (flat positions; default all), given the
-    groups' effects, streamed over rows."""
-    from hierwork.results.draws import chunks, draws_of, linear_predictor, rows_of
+    groups' effects: once per distinct row (``distinct``, default
+    :func:`~hierwork.results.draws.distinct_rows` of the plan's rows) times the rows it stands for,
+    streamed over them."""
+    from hierwork.results.draws import chunks, distinct_rows, draws_of, linear_predictor, rows_of
 
     draws = draws_of(idata.posterior, plan.factors, plan.family.parameters(plan.outcome))
     draws = draws if keep is None else draws.subset(keep)
-    rows = rows_of(plan)
-    params = draws.family_params()
+    distinct = distinct_rows(rows_of(plan)) if distinct is None else distinct
+    rows = distinct.rows
     total = np.zeros(draws.n)
     for sl in chunks(draws.n, rows.n):
         eta = linear_predictor(draws, rows, sl)
-        total += plan.family.log_density(rows.outcome.y[sl], eta, rows.outcome.rows(sl), params).sum(axis=1)
+        density = plan.family.log_density(rows.outcome.y[sl], eta, rows.outcome.rows(sl), draws.family_params(rows, sl))
+        total += density @ distinct.counts[sl]
     return total
 
 
@@ -215,17 +218,18 @@ def sensitivity_table(idata, plan: ModelPlan) -> pd.DataFrame:
         Columns :data:`COLUMNS`, one row per population coefficient, family
         parameter and group SD; ``pareto_k`` is the largest of the four
         scalings' (prior and likelihood, both directions), shared by every row.
-        Above :data:`LIKELIHOOD_CELLS` evaluations, evenly spaced draws are used.
+        Above :data:`LIKELIHOOD_CELLS` evaluations (draws x distinct rows), evenly spaced draws are used.
     """
-    from hierwork.results.draws import within_budget
+    from hierwork.results.draws import distinct_rows, rows_of, within_budget
     from hierwork.results.loo import relative_efficiency
 
     lp = log_prior(idata, plan)
-    keep = within_budget(len(lp), plan.n, LIKELIHOOD_CELLS, MIN_DRAWS)
+    distinct = distinct_rows(rows_of(plan))
+    keep = within_budget(len(lp), distinct.rows.n, LIKELIHOOD_CELLS, MIN_DRAWS)
     values = {name: x[keep] for name, x in reported_parameters(idata, plan).items()}
     r_eff = relative_efficiency(idata.posterior[["b"]]) if len(keep) == len(lp) else 1.0
     prior, k_prior = sensitivities(values, lp[keep], r_eff)
-    likelihood, k_lik = sensitivities(values, log_likelihood(idata, plan, keep), r_eff)
+    likelihood, k_lik = sensitivities(values, log_likelihood(idata, plan, keep, distinct), r_eff)
     k, limit = max(k_prior, k_lik), k_limit(len(keep))
     rows = [(name, prior[name], likelihood[name], diagnose(prior[name], likelihood[name], k, limit), k)
             for name in values]
