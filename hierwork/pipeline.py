@@ -17,7 +17,7 @@ from pathlib import Path
 
 from hierwork import __version__
 from hierwork.declare.spec import Spec, load_spec
-from hierwork.model.paths import choose_engine, default_cores, gradient_work, resolve_path, sampled_dimension
+from hierwork.model.paths import choose_engine, engine_load, resolve_path
 
 _PACKAGES = ("pymc", "pytensor", "arviz", "numpy", "scipy", "pandas", "xarray", "nutpie")
 
@@ -107,14 +107,6 @@ def path_model(plan, path: str):
     from hierwork.model.rowwise import build_model
 
     return build_model(plan, reduced=path == "reduced"), lambda idata, seed: idata
-
-
-def engine_load(plan, path: str) -> dict:
-    """What :func:`~hierwork.model.paths.choose_engine` weighs: gradient work, dimension, iterations, rounds."""
-    s = plan.spec.sampling
-    cores = default_cores(s["chains"], s.get("cores"))
-    return {"work": gradient_work(plan, path), "dimension": sampled_dimension(plan, path),
-            "iterations": s["warmup"] + s["draws"], "rounds": -(-s["chains"] // cores)}
 
 
 def sample_posterior(report: CheckReport, progress: bool | None = None):

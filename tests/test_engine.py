@@ -14,7 +14,6 @@ import pytest
 
 import hierwork
 from hierwork.model import paths
-from hierwork.pipeline import engine_load
 
 
 def _check(tmp_path, family="normal", groups=("farm",), n_rows=120, path="auto", chains=2, cores=None):
@@ -92,7 +91,7 @@ def test_the_reason_states_both_predictions_and_the_steps():
 
 def test_chains_beyond_the_cores_run_in_rounds(tmp_path):
     report = _check(tmp_path, chains=4, cores=2)
-    load = engine_load(report.plan, report.path)
+    load = paths.engine_load(report.plan, report.path)
     assert load["rounds"] == 2 and load["iterations"] == 1_200
     one_round = paths.choose_engine("auto", load["work"], load["dimension"], load["iterations"], 1)[1]
     assert one_round != report.engine_reason  # twice the steps: a different prediction

@@ -284,6 +284,17 @@ def choose_engine(requested: str, work: int, dimension: int = 1, iterations: int
                     f"compile included ({steps / 1e3:,.0f}k leapfrog steps per core, gradient work {_work(work)})")
 
 
+def engine_load(plan, path: str, iterations: int | None = None) -> dict:
+    """What :func:`choose_engine` weighs for a plan on a path: gradient work, dimension, iterations, rounds.
+
+    ``iterations``: warm-up plus draws per chain (default: the spec's).
+    """
+    s = plan.spec.sampling
+    cores = default_cores(s["chains"], s.get("cores"))
+    return {"work": gradient_work(plan, path), "dimension": sampled_dimension(plan, path),
+            "iterations": iterations or s["warmup"] + s["draws"], "rounds": -(-s["chains"] // cores)}
+
+
 def _secs(s: float) -> str:
     return f"{s:.0f} s" if s < 600 else f"{s / 60:.0f} min"
 

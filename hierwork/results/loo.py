@@ -115,13 +115,14 @@ def _design(names) -> Design:
 
 def _fit_baseline(plan: ModelPlan, spec, seed: int, centre: bool):
     from hierwork.inference.sampling import run_sampler
-    from hierwork.model.paths import choose_engine
+    from hierwork.model.paths import choose_engine, engine_load
     from hierwork.model.rowwise import build_model
 
     settings = dict(spec.sampling, seed=int(seed),
                     draws=min(spec.sampling["draws"], BASELINE_MAX_DRAWS),
                     warmup=min(spec.sampling["warmup"], BASELINE_MAX_DRAWS))
-    engine = choose_engine(settings["engine"], plan.n * plan.X.shape[1])[0]
+    engine = choose_engine(settings["engine"],
+                           **engine_load(plan, "plain", settings["warmup"] + settings["draws"]))[0]
     return run_sampler(build_model(plan, centre=centre), settings, engine, progress=False)
 
 
