@@ -162,8 +162,13 @@ groups: {herd: {column: herd}, cell: {column: herd_period}}
 def test_check_says_the_shift_and_why(tmp_path):
     plan_text = _plan(tmp_path, "machines.csv", "{column: score, family: normal}", "[]",
                       "{worker: {column: worker}, machine: {column: machine}}")
-    # semi-collapsed: worker integrated out, one factor sampled, nothing to shift
-    assert "population terms" not in hierwork.check(tmp_path / "spec.yaml", {"sampling.path": "semi_collapsed"}).text()
+    # semi-collapsed (auto): worker integrated out, machine sampled and crossed with it, so shifted too;
+    # the reduced path samples both
+    for path in ("auto", "reduced"):
+        report = hierwork.check(tmp_path / "spec.yaml", {"sampling.path": path})
+        line = [x for x in report.text().splitlines() if "population terms" in x]
+        assert len(line) == 1 and "worker and machine are crossed" in line[0] and "(intercept)" in line[0]
+    assert report.path == "reduced" and hierwork.check(tmp_path / "spec.yaml").path == "semi_collapsed"
     report = hierwork.check(tmp_path / "spec.yaml")
     line = [x for x in report.text().splitlines() if "population terms" in x]
     assert len(line) == 1 and "worker and machine are crossed" in line[0] and "(intercept)" in line[0]

@@ -133,11 +133,12 @@ def shifted_columns(plan) -> tuple:
 
 def shift_decision(plan, path: str) -> tuple | None:
     """``(what, choice, reason)`` of the shift for ``check``, or None when it does not apply."""
-    plan = sampled_plan(plan, path)
+    # semi_collapsed: the sampled factors are shifted because they are crossed with the integrated one
     if path == "collapsed" or not (cols := shifted_columns(plan)):
         return None
     f, g = crossed_pair(plan)
     terms = ", ".join(plan.terms[c] for c in cols)
+    plan = sampled_plan(plan, path)
     return ("population terms", f"sampled shifted by the mean group effects ({terms})",
             f"{f} and {g} are crossed: the data identify each coefficient plus its factors' mean effects, "
             "not each, so that sum is sampled and the coefficient derived (exact, unit Jacobian)"

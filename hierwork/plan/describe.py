@@ -57,10 +57,10 @@ def _shift(plan, path):
 
 def _shift_entry(plan, path) -> dict:
     """plan.json's ``shifted_terms`` (sampled plus their factors' mean effects) and ``shift_reason``."""
-    from hierwork.model.paths import sampled_plan, shifted_columns
+    from hierwork.model.paths import shifted_columns
 
-    row = _shift(plan, path)
-    return {} if row is None else {"shifted_terms": [plan.terms[c] for c in shifted_columns(sampled_plan(plan, path))],
+    row = _shift(plan, path)  # the semi-collapsed path shifts the same columns (its factors cross the integrated one)
+    return {} if row is None else {"shifted_terms": [plan.terms[c] for c in shifted_columns(plan)],
                                    "shift_reason": row[2]}
 
 
