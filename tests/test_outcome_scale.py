@@ -217,6 +217,14 @@ def test_binomial_report_leads_with_the_outcome_scale(lines):
     population = run.summary.set_index("parameter").loc["outcome", "mean"]
     assert f"Population value (a typical group): {100 * population:.3g}%" in standout
     assert "probability that" in standout and "is higher" in standout  # the contrast
+    # A group is named as different exactly when the table's P(above population) says so at the run's level.
+    level = run.interval
+    lines_ = table[table["term"] == "intercept"]
+    away = ((lines_["p_above_population"] > 1 - (1 - level) / 2) | (lines_["p_above_population"] < (1 - level) / 2))
+    if away.any():
+        assert f"{int(away.sum())} of 30 groups differ from the population value" in standout
+    else:
+        assert "no group differs clearly from the population value" in standout
     # The link scale is one click away.
     details = page.find("details")
     assert len(details) == 1 and "log-odds" in details[0][2] and "open" not in details[0][1]

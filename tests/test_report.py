@@ -392,3 +392,19 @@ def test_run_folder_of_an_older_version_still_renders(run_root, tmp_path):
     assert page.errors == []
     assert "written by an older version" in page.find("section", id="standout")[0][2]
     assert page.find("figure", id="traces") and page.find("figure", id="divergences")
+
+
+def test_standing_out_reads_the_difference_not_the_groups_own_interval():
+    """A group whose own interval covers the population value but whose difference from it does not stands out.
+
+    On crossed designs the population value's uncertainty (the shared intercept)
+    widens every group's interval; the difference, drawn jointly, cancels it
+    (the rule in docs/report.md). Levels: a 90% interval leaves 5% in each tail.
+    """
+    from hierwork.report.view import away_from_population
+
+    rows = pd.DataFrame({"group": ["a", "b", "c", "d"], "outcome_lower": [9.0, 9.0, 8.0, 7.0],
+                         "outcome_upper": [13.0, 12.0, 11.0, 10.5], "p_above_population": [0.999, 0.94, 0.5, 0.01]})
+    above, below = away_from_population(rows, 0.90)
+    assert above.tolist() == [True, False, False, False]
+    assert below.tolist() == [False, False, False, True]

@@ -13,7 +13,7 @@ import numpy as np
 from hierwork.formatting import number as fmt
 from hierwork.report.plotting import GREY, PALETTE, Plot, Scale, clip_text, finish, new_figure, styled
 from hierwork.results import funnel
-from hierwork.report.view import term_what
+from hierwork.report.view import away_from_population, term_what
 
 __all__ = ["ranked_plot", "funnel_plot", "pooling_plot", "volume", "MAX_FOREST_GROUPS", "MAX_SCATTER_GROUPS"]
 
@@ -77,12 +77,10 @@ def _off_axis(own: np.ndarray, limits: tuple[float, float]) -> tuple[np.ndarray,
     return np.clip(own, *limits), below, above
 
 
-def _standing(rows, population: float | None) -> tuple[np.ndarray, np.ndarray]:
-    """Masks of the groups whose interval lies wholly above / below the population value."""
-    if population is None:
-        none = np.zeros(len(rows), bool)
-        return none, none
-    return (rows["outcome_lower"] > population).to_numpy(), (rows["outcome_upper"] < population).to_numpy()
+def _standing(rows, interval: float) -> tuple[np.ndarray, np.ndarray]:
+    """Masks of the groups clearly above / below the population value (the report's rule)."""
+    above, below = away_from_population(rows, interval)
+    return above.to_numpy(), below.to_numpy()
 
 
 @styled
@@ -98,7 +96,7 @@ def ranked_plot(rows, factor: str, term: str, scale: Scale, interval: float, ban
     population = band["mean"] if band else None
     rows = rows.sort_values("outcome_mean", ascending=False, kind="stable").reset_index(drop=True)
     target = target if term == "intercept" else None
-    above, below = _standing(rows, population)
+    above, below = _standing(rows, interval)
     size_column, sizes = volume(rows)
     note: list = []
     if len(rows) <= MAX_FOREST_GROUPS:
@@ -114,7 +112,7 @@ def ranked_plot(rows, factor: str, term: str, scale: Scale, interval: float, ban
         ax.set_xlabel(clip_text(scale.axis_label(term), 90))
     else:
         rows = _thin(rows, note)
-        above, below = _standing(rows, population)
+        above, below = _standing(rows, interval)
         fig = new_figure(6.6, 3.6)
         ax = fig.add_subplot()
         position, axis = np.arange(1, len(rows) + 1), ax.yaxis
@@ -131,11 +129,11 @@ def ranked_plot(rows, factor: str, term: str, scale: Scale, interval: float, ban
              label=f"target ({target['direction']} is beyond)")
     x, y = (np.asarray(p, dtype=float) for p in points)
     plain = ~(above | below)
-    ax.scatter(x[plain], y[plain], s=22, color=PALETTE["blue"], zorder=3, label="estimate, interval overlaps population")
+    ax.scatter(x[plain], y[plain], s=22, color=PALETTE["blue"], zorder=3, label="estimate, not clearly different")
     ax.scatter(x[above], y[above], s=34, marker="^", color=PALETTE["purple"], zorder=4,
-               label="interval above the population value")
+               label="clearly above the population value")
     ax.scatter(x[below], y[below], s=34, marker="v", color=PALETTE["orange"], zorder=4,
-               label="interval below the population value")
+               label="clearly below the population value")
     scale.format_axis(axis)
     what = term_what(term) or "expected outcome"
     fig.suptitle(clip_text(f"{factor}: {what}, sorted", 70), x=0.02, ha="left", weight="bold")
@@ -143,14 +141,16 @@ def ranked_plot(rows, factor: str, term: str, scale: Scale, interval: float, ban
     top, bottom = rows.iloc[0], rows.iloc[-1]
     alt = (f"{factor} groups sorted by {what} on the scale of {scale.label}: highest {top['group']} at "
            f"{scale.text(top['outcome_mean'], term != 'intercept')}, lowest {bottom['group']} at "
-           f"{scale.text(bottom['outcome_mean'], term != 'intercept')}; {int(above.sum())} groups with the "
-           f"interval above and {int(below.sum())} below the population value"
+           f"{scale.text(bottom['outcome_mean'], term != 'intercept')}; {int(above.sum())} groups clearly "
+           f"above and {int(below.sum())} clearly below the population value"
            + (f" {scale.text(population, term != 'intercept')}" if population is not None else "") + ".")
     caption = (f"{factor}, {what}: each group's posterior mean and {interval:.0%} interval on the scale of "
                f"{scale.label}, highest first; the dashed line is the population value (a typical group at "
                f"the same values of the predictors) within its shaded {interval:.0%} interval"
                + ("; the dotted line the target" if target else "")
-               + ". Triangles mark groups whose whole interval lies above or below the population value. "
+               + f". Triangles mark groups clearly above or below the population value: the {interval:.0%} interval of "
+               "the difference, group minus population, excludes zero (a group's own interval can still cover the "
+               "dashed line, which is uncertain too). "
                + " ".join(note))
     return finish(fig, alt, caption.strip(), stamp)
 

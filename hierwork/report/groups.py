@@ -93,9 +93,9 @@ def estimates_section(view: View, bad, stamp: str | None, sink: FigureSink | Non
                           "estimates to show.", class_="note"))
         return el("section", el("h2", "Estimates"), content, id="estimates",
                   class_="not-for-use" if stamp else None)
-    content.append(el("p", f"Every value is on the scale of {view.scale.label}, with the predictors at "
-                      f"{view.compared_at}. Intervals are central {view.level} posterior intervals; press a "
-                      "column heading to sort a table.", class_="note"))
+    held = f", with the predictors at {view.compared_at}" if view.has_predictors else ""
+    content.append(el("p", f"Every value is on the scale of {view.scale.label}{held}. Intervals are central "
+                      f"{view.level} posterior intervals; press a column heading to sort a table.", class_="note"))
     for factor, term in view.keys():
         rows = view.rows(factor, term)
         population = view.population(term)

@@ -16,7 +16,7 @@ from hierwork.formatting import number as fmt
 from hierwork.plan.describe import missing_text
 from hierwork.report import fitcheck
 from hierwork.report.page import CAUTION
-from hierwork.report.standout import factor_sentences, standing_out
+from hierwork.report.standout import comparison_sentence, factor_sentences, standing_out
 from hierwork.report.verdict import verdict
 from hierwork.report.view import View
 from hierwork.runfolder import Run
@@ -55,7 +55,7 @@ def _standout(view: View) -> list[str]:
     lines = ["## What stands out", ""]
     if not view.ready:
         return lines + ["group\\_estimates.csv has no outcome-scale columns: refit to see them.", ""]
-    lines += [md_escape(f"Groups are compared at {view.compared_at}, on the scale of {view.scale.label}."), ""]
+    lines += [md_escape(comparison_sentence(view)), ""]
     population = view.population("intercept")
     if population:
         lines += [md_escape(f"Population value (a typical group): {view.scale.text(population['mean'])} "

@@ -1,8 +1,9 @@
 """The report's "What stands out" section: groups away from the population or beyond the target, and contrasts.
 
-Right after the verdict, in words and in a table. A group stands out when its
-central interval on the outcome's scale lies wholly above or below the
-population value (a typical group at the same reference values), or when the
+Right after the verdict, in words and in a table. A group stands out when the
+central interval of its difference from the population value (a typical group
+at the same reference values) lies wholly above or below zero
+(:func:`~hierwork.report.view.away_from_population`), or when the
 probability that it is beyond ``estimates.target`` exceeds
 :data:`TARGET_PROBABILITY`. The requested contrasts (``contrasts.csv``) follow.
 Every number comes from the run folder's files.
@@ -14,9 +15,9 @@ import pandas as pd
 from hierwork.formatting import probability
 from hierwork.report.markup import Raw, el
 from hierwork.report.page import banner, data_table
-from hierwork.report.view import View, term_what
+from hierwork.report.view import View, away_from_population, term_what
 
-__all__ = ["standout_section", "standing_out", "factor_sentences", "TARGET_PROBABILITY"]
+__all__ = ["standout_section", "standing_out", "comparison_sentence", "factor_sentences", "TARGET_PROBABILITY"]
 
 #: ``p_beyond_target`` above which a group is named as beyond the target (the issue's rule).
 TARGET_PROBABILITY = 0.9
@@ -24,14 +25,19 @@ TARGET_PROBABILITY = 0.9
 NAMED, MAX_ROWS = 6, 50
 
 
+def comparison_sentence(view: View) -> str:
+    """Where and on which scale groups are compared, in one sentence."""
+    if view.has_predictors:
+        return f"Groups are compared at {view.compared_at}, on the scale of {view.scale.label}."
+    return f"Groups are compared on the scale of {view.scale.label} (the model has no predictors to hold fixed)."
+
+
 def standing_out(view: View, factor: str, term: str) -> tuple[pd.DataFrame, pd.DataFrame, pd.DataFrame]:
-    """Groups of one factor and term whose interval lies above / below the population value, and beyond the target."""
+    """Groups of one factor and term clearly above / below the population value, and beyond the target."""
     rows = view.rows(factor, term).sort_values("outcome_mean", ascending=False, kind="stable")
-    population = view.population(term)
-    none = rows.iloc[:0]
-    above = rows[rows["outcome_lower"] > population["mean"]] if population else none
-    below = rows[rows["outcome_upper"] < population["mean"]] if population else none
-    beyond = rows[rows["p_beyond_target"] > TARGET_PROBABILITY] if view.target and term == "intercept" else none
+    high, low = away_from_population(rows, view.run.interval)
+    above, below = rows[high], rows[low]
+    beyond = rows[rows["p_beyond_target"] > TARGET_PROBABILITY] if view.target and term == "intercept" else rows.iloc[:0]
     return above, below, beyond
 
 
@@ -54,11 +60,12 @@ def factor_sentences(view: View, factor: str, term: str) -> list:
         if len(below):
             parts.append(f"{len(below)} below it: {_names(view, below, change)}")
         away = len(above) + len(below)
-        lines.append(f"{factor}{what}: {away} of {count} groups {'has its' if away == 1 else 'have their'} {level} "
-                     f"interval wholly away from the population value; " + "; ".join(parts) + ".")
+        lines.append(f"{factor}{what}: {away} of {count} groups {'differs' if away == 1 else 'differ'} from the "
+                     f"population value (the {level} interval of the difference excludes zero); "
+                     + "; ".join(parts) + ".")
     else:
-        lines.append(f"{factor}{what}: no group's {level} interval lies wholly away from the population value "
-                     f"({count} groups).")
+        lines.append(f"{factor}{what}: no group differs clearly from the population value (no {level} interval "
+                     f"of a difference excludes zero; {count} groups).")
     if view.target and term == "intercept":
         target = view.target
         side = "above" if target["direction"] == "above" else "below"
@@ -111,7 +118,7 @@ def standout_section(view: View, stamp: str | None) -> Raw:
         content.append(el("p", "group_estimates.csv is missing or has no outcome-scale columns (written by an "
                           "older version): refit to see which groups stand out.", class_="note"))
     else:
-        content.append(el("p", f"Groups are compared at {view.compared_at}, on the scale of {view.scale.label}."))
+        content.append(el("p", comparison_sentence(view)))
         population = view.population("intercept")
         if population:
             content.append(el("p", el("strong", f"Population value (a typical group): "

@@ -88,6 +88,11 @@ class View:
         """The reference values in words."""
         return str(self.estimands.get("text") or "the stored estimates (reference values not recorded)")
 
+    @property
+    def has_predictors(self) -> bool:
+        """Whether the estimates hold predictors at reference values (False: the model has none)."""
+        return self.estimands.get("values") != []
+
     def cells(self, change: bool) -> dict:
         """How table cells are written: values on the outcome's scale (``change``: differences), probabilities."""
         writers = {c: (lambda v: self.scale.text(v, change)) for c in OUTCOME_COLUMNS}
@@ -113,6 +118,21 @@ class View:
             if not row.empty:
                 return row.iloc[0][["mean", "lower", "upper"]].astype(float).to_dict()
         return None
+
+
+def away_from_population(rows: pd.DataFrame, interval: float) -> tuple[pd.Series, pd.Series]:
+    """Masks of the groups clearly above / below the population value.
+
+    A group is clearly above when the central ``interval`` of its difference
+    from the population value (drawn together, so the shared intercept's
+    uncertainty cancels) lies wholly above zero: ``p_above_population`` beyond
+    ``1 - (1 - interval) / 2``. Its own interval may still cover the
+    population value, which is uncertain too; the difference is what the
+    question "does this group differ?" asks about.
+    """
+    tail = (1.0 - interval) / 2.0
+    p = rows["p_above_population"].astype(float)
+    return p > 1.0 - tail, p < tail
 
 
 def term_what(term: str) -> str:
