@@ -112,6 +112,31 @@ def test_sparse_approximation_agrees_with_the_exact_inverse_on_one_factor(monkey
     assert np.all(approx.kappa[0] >= exact.kappa[0])  # conditional on the intercept: more informative
 
 
+@pytest.mark.parametrize("dense_max", [24, 0])  # 24: the largest factor eliminated, the rest dense; 0: sparse LU
+def test_sparse_solves_equal_numpys_dense_solution(monkeypatch, dense_max):
+    # machines (crossed worker x machine, and their cells): the mixed-model equations at arbitrary
+    # variance ratios, solved without forming them densely, against numpy.linalg.solve of the dense system.
+    from scipy import sparse
+
+    from hierwork.plan import parameterisation
+
+    data = pd.read_csv(DATA / "machines.csv")
+    data["cell"] = data["worker"].astype(str) + ":" + data["machine"]
+    blocks = _blocks(data, ["worker", "machine", "cell"])
+    n, y = len(data), data["score"].to_numpy(float)
+    Z = sparse.hstack([sparse.csc_matrix((np.ones(n), (np.arange(n), b.index)), shape=(n, b.n_groups))
+                       for b in blocks], format="csc")
+    X = np.ones((n, 1))
+    A, B, D = X.T @ X, np.asarray(Z.T @ X).T, (Z.T @ Z).tocsc()
+    rhs = np.concatenate([X.T @ y, Z.T @ y])
+    ginv = np.random.default_rng(5).uniform(0.1, 3.0, Z.shape[1])
+    expected = np.linalg.solve(np.block([[A, B], [B.T, D.toarray() + np.diag(ginv)]]), rhs)
+    monkeypatch.setattr(parameterisation, "DENSE_MAX", dense_max)
+    cell = slice(6 + 3, 6 + 3 + 18)  # the block with most groups
+    solution, _ = parameterisation._solve(A, B, D, rhs, ginv, False, cell)
+    assert solution == pytest.approx(expected, rel=1e-9, abs=1e-9)
+
+
 def test_check_judges_crossed_factors_from_the_joint_components(tmp_path):
     # machines: jointly, the worker and machine effects are judged net of the cell effects.
     # Only 3 machines: the 90% interval of their tau^2 reaches 0, where a centred form has no

@@ -127,3 +127,77 @@ def test_path_choice_and_requests(tmp_path):
     with pytest.raises(hierwork.errors.SpecError, match="path 'semi_collapsed' does not apply"):
         _plan(tmp_path, frame, {"outcome": {"column": "y", "family": "poisson"},
                                 "groups": {"a": {}, "c": {}}, "sampling": {"path": "semi_collapsed"}})
+
+
+def test_refresh_sweeps_keep_the_dense_joint_conditional(tmp_path):
+    """Gibbs sweeps leave the joint conditional of all effects unchanged (dense normal algebra).
+
+    At one value of the coefficients, SDs and group-predictor coefficients, the
+    sampled factors' effects start as exact draws of their conditional with the
+    integrated factor marginalised; after :func:`add_group_effects` every
+    factor's effects (refreshed) must follow the dense joint conditional of all
+    effects given that value, and NUTS's parameterisation variables are set aside.
+    """
+    import arviz as az
+    import xarray as xr
+
+    plan = _crossed(tmp_path, n=60, seed=8)
+    factors = [plan.factor(name) for name in ("courier", "address", "region")]
+    b, gamma, sigma = np.array([40.0, 0.5]), np.array([0.7]), 3.0
+    chol = np.array([[2.0, 0.0], [0.3, 0.5]])
+    sds = {"address": 1.5, "region": 1.0}
+    # The dense joint conditional of (courier, address, region) effects given the values above.
+    columns, prior = [], []
+    for f in factors:
+        for j in range(f.n_groups):
+            for k, col in enumerate(f.varying_cols):
+                z = np.zeros(plan.n)
+                rows = f.index == j
+                z[rows] = plan.X[rows, col]
+                columns.append(z)
+        prior.append(np.kron(np.eye(f.n_groups), chol @ chol.T) if f.name == "courier"
+                     else sds[f.name] ** 2 * np.eye(f.n_groups))
+    Z = np.column_stack(columns)
+    P = np.zeros((Z.shape[1],) * 2)
+    start = 0
+    for block in prior:
+        P[start:start + len(block), start:start + len(block)] = block
+        start += len(block)
+    courier = factors[0]
+    residual = plan.y - plan.X @ b - courier.W[courier.index] @ gamma
+    precision = Z.T @ Z / sigma ** 2 + np.linalg.inv(P)
+    cov = np.linalg.inv(precision)
+    mu = cov @ Z.T @ residual / sigma ** 2
+    n_courier = courier.n_groups * 2
+    D, rng = 4000, np.random.default_rng(4)
+    start = rng.multivariate_normal(mu[n_courier:], cov[n_courier:, n_courier:], size=D)  # courier marginalised
+    n_address = factors[1].n_groups
+    shape = (2, D // 2)
+    courier_cov = chol @ chol.T
+    courier_sd = np.sqrt(np.diag(courier_cov))
+    post = xr.Dataset({
+        "b": (("chain", "draw", "term"), np.broadcast_to(b, shape + (2,)).copy()),
+        "residual_sd": (("chain", "draw"), np.full(shape, sigma)),
+        "courier__sd": (("chain", "draw", "courier__term"), np.broadcast_to(courier_sd, shape + (2,)).copy()),
+        "courier__corr": (("chain", "draw", "courier__term", "courier__term_"),
+                          np.broadcast_to(courier_cov / np.outer(courier_sd, courier_sd), shape + (2, 2)).copy()),
+        "courier__gamma": (("chain", "draw", "courier__predictor"), np.broadcast_to(gamma, shape + (1,)).copy()),
+        "address__sd": (("chain", "draw", "address__term"), np.full(shape + (1,), sds["address"])),
+        "region__sd": (("chain", "draw", "region__term"), np.full(shape + (1,), sds["region"])),
+        "address__effect": (("chain", "draw", "address", "address__term"),
+                            start[:, :n_address].reshape(shape + (n_address, 1))),
+        "region__effect": (("chain", "draw", "region", "region__term"),
+                           start[:, n_address:].reshape(shape + (-1, 1))),
+        "address__contrast": (("chain", "draw", "address__contrasts"), np.zeros(shape + (n_address - 1,))),
+        "b_shifted_intercept": (("chain", "draw"), np.zeros(shape)),
+    })
+    idata = semi_collapsed.add_group_effects(az.InferenceData(posterior=post), plan, seed=9)
+    after = idata.posterior
+    assert "address__contrast" not in after and "b_shifted_intercept" not in after
+    assert set(idata.sampled_forms.data_vars) == {"address__contrast", "b_shifted_intercept"}
+    flat = np.concatenate([after[f"{f.name}__effect"].values.reshape(D, -1) for f in factors], axis=1)
+    sd = np.sqrt(np.diag(cov))
+    np.testing.assert_allclose(flat.mean(0), mu, atol=5 * sd.max() / np.sqrt(D))  # 5 Monte Carlo SEs
+    np.testing.assert_allclose(np.cov(flat.T), cov, atol=0.08 * cov.diagonal().max())
+    # The refresh moved the sampled factors' effects: they are not NUTS's draws any more.
+    assert not np.allclose(after["address__effect"].values.reshape(D, -1), start[:, :n_address])

@@ -33,6 +33,8 @@ the conditional ``N(M^{-1} Z'r, s^2 M^{-1})`` of the design note with
 """
 from __future__ import annotations
 
+import os
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -443,13 +445,18 @@ def draw_integrated_effects(stats: CellStats, b, effects, factor: Integrated, ch
     n_draws = len(b)
     q = len(factor.cols)
     out = np.empty((n_draws, factor.n_groups, q))
-    for d in range(n_draws):
+    noise = rng.standard_normal((n_draws, q, factor.n_groups))  # drawn up front: the same for any thread count
+
+    def one(d):
         L = np.asarray(chols[d], float)
         _, (R, e) = integrated_group_loglik(stats, b[d], [(u[d], c, g) for u, c, g in effects], factor, L,
                                          None if sigma is None else float(sigma[d]), xp=np,
                                          keep_factor=True)
-        v = [e[i] + rng.standard_normal(factor.n_groups) for i in range(q)]
-        out[d] = np.stack(_backward(R, v), axis=1) @ L.T
+        out[d] = np.stack(_backward(R, [e[i] + noise[d, i] for i in range(q)]), axis=1) @ L.T
+
+    # Draws are independent and NumPy's loops over cells release the GIL: threads share the cores.
+    with ThreadPoolExecutor(max_workers=os.cpu_count() or 1) as pool:
+        list(pool.map(one, range(n_draws)))
     return out
 
 

@@ -10,14 +10,16 @@ it the largest funnel); the others are sampled as on the reduced path, in
 their planned forms (:func:`hierwork.model.rowwise.build_model` on the plan
 without that factor). After sampling, :func:`add_group_effects` draws its
 ``F__effect`` exactly from its conditional normal for every posterior draw,
-so the run folder holds the same variables as on every other path.
+so the run folder holds the same variables as on every other path, and then
+refreshes every factor's effects by a few exact Gibbs sweeps, so that they mix
+as the coefficients and SDs do.
 
 Cost per gradient: O(cells x p^2), cells being the combinations of all
 factors' groups that occur (at most the rows).
 """
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 
 from hierwork import runtime  # noqa: F401  (before PyTensor)
 
@@ -82,8 +84,33 @@ def build_semi_collapsed_model(plan: ModelPlan, problem: SemiCollapsedProblem | 
                        likelihood_of=likelihood_of)
 
 
+#: Gibbs sweeps over every factor after sampling (:func:`add_group_effects`).
+REFRESH_SWEEPS = 2
+#: Posterior variables of a sampled factor's parameterisation (``F__contrast``...), set aside by the refresh.
+SAMPLED_FORMS = ("contrast", "mean_z", "z", "u", "coef", "partial")
+#: Population coefficients sampled shifted by the mean group effects, set aside by the refresh.
+SHIFTED = ("b_shifted_intercept", "b_shifted_slope")
+#: The InferenceData group that keeps what the refresh sets aside (NUTS's own draws of it).
+AS_SAMPLED = "sampled_forms"
+
+
 def add_group_effects(idata, plan: ModelPlan, seed, problem: SemiCollapsedProblem | None = None):
-    """Draw the integrated factor's ``F__effect`` exactly for each posterior draw, in place.
+    """Draw the integrated factor's ``F__effect`` exactly, then refresh every factor's effects, in place.
+
+    First the integrated factor is drawn from its conditional normal given
+    each posterior draw of the rest. With crossed factors the effects NUTS
+    sampled are then refreshed by :data:`REFRESH_SWEEPS` Gibbs sweeps: each
+    factor in turn is drawn from its exact conditional normal given the
+    coefficients, the SDs and the other factors' current effects (on a normal
+    outcome, the rows of different groups of one factor are independent given
+    the rest). Each step leaves the joint posterior unchanged, so every stored
+    draw is still an exact posterior draw; but the stored effects now mix as
+    the coefficients and SDs do, not as NUTS's draws of a thousand or more
+    correlated effects, whose tail mixing (folded R-hat) is the weak point of
+    large crossed fits. NUTS's own draws of the refreshed factors'
+    parameterisation (``F__contrast``, ``b_shifted_*``...) no longer match the
+    stored effects; they are kept in the group ``sampled_forms`` (in
+    ``posterior.nc``) and are not gated.
 
     Parameters
     ----------
@@ -100,7 +127,28 @@ def add_group_effects(idata, plan: ModelPlan, seed, problem: SemiCollapsedProble
     arviz.InferenceData (the same object).
     """
     problem = problem or semi_collapsed_problem(plan)
-    f, post = problem.factor, idata.posterior
+    rng = seeds.rng(seed, "group_effects")
+    _draw_factor(idata.posterior, plan, problem, rng)
+    others = [SemiCollapsedProblem(g, replace(plan, factors=tuple(h for h in plan.factors if h is not g)))
+              for g in problem.rest.factors]
+    if not others:
+        return idata
+    for _ in range(REFRESH_SWEEPS):
+        for step in others + [problem]:
+            _draw_factor(idata.posterior, plan, step, rng)
+    post = idata.posterior
+    aside = [name for name in post.data_vars
+             if name.startswith(SHIFTED) or any(name == f"{g.name}__{form}" for g in problem.rest.factors
+                                                for form in SAMPLED_FORMS)]
+    if aside:
+        idata.add_groups({AS_SAMPLED: post[aside]})
+        idata.posterior = post.drop_vars(aside)
+    return idata
+
+
+def _draw_factor(post, plan: ModelPlan, problem: SemiCollapsedProblem, rng) -> None:
+    """``F__effect`` of ``problem.factor`` drawn from its conditional normal given the rest's current draws."""
+    f = problem.factor
     n_chain, n_draw = post.sizes["chain"], post.sizes["draw"]
 
     def flat(name):
@@ -114,13 +162,11 @@ def add_group_effects(idata, plan: ModelPlan, seed, problem: SemiCollapsedProble
     chols = sd[:, :, None] if len(f.varying) == 1 else sd[:, :, None] * np.linalg.cholesky(flat(f"{f.name}__corr"))
     u = marginal.draw_integrated_effects(stats, flat("b"), effects,
                                       marginal.Integrated(tuple(f.varying_cols), groups[:, -1], f.n_groups),
-                                      chols, None if plan.known_sd is not None else flat("residual_sd"),
-                                      rng=seeds.rng(seed, "group_effects"))
+                                      chols, None if plan.known_sd is not None else flat("residual_sd"), rng=rng)
     post[f"{f.name}__effect"] = xr.DataArray(
         u.reshape(n_chain, n_draw, f.n_groups, len(f.varying)),
         coords={"chain": post.chain, "draw": post.draw, f.name: list(f.levels), f"{f.name}__term": list(f.varying)},
         dims=("chain", "draw", f.name, f"{f.name}__term"))
-    return idata
 
 
 def _draw_terms(plan, problem, flat) -> tuple[CellStats, np.ndarray, list]:

@@ -129,9 +129,11 @@ def variance_components(z, var, X, blocks) -> Components:
     sigma2 = scale / (len(blocks) + 1) if var is None else 1.0
     tau2 = np.full(len(blocks), scale / (len(blocks) + 1))
     exact = p + q <= DENSE_MAX
+    big = int(np.argmax([b.n_groups for b in blocks]))
+    eliminated = slice(int(starts[big]), int(starts[big + 1]))  # one block's own equations are diagonal
     for iteration in range(1, MAX_ITER + 1):
         ginv = 1.0 / np.maximum(tau2, ZERO * scale)
-        sol, pv = _solve(A, B, D, rhs0, ginv[which] * sigma2, exact)
+        sol, pv = _solve(A, B, D, rhs0, ginv[which] * sigma2, exact, eliminated)
         u = sol[p:]
         new = np.array([(u[s:e] @ u[s:e] + sigma2 * pv[s:e].sum()) / (e - s) for s, e in zip(starts, starts[1:])])
         if var is None:
@@ -145,7 +147,7 @@ def variance_components(z, var, X, blocks) -> Components:
         if change < TOLERANCE:
             break
     ginv = 1.0 / np.maximum(tau2, ZERO * scale)
-    _, pv = _solve(A, B, D, rhs0, ginv[which] * sigma2, exact)
+    _, pv = _solve(A, B, D, rhs0, ginv[which] * sigma2, exact, eliminated)
     kappa = [np.maximum(t / np.maximum(sigma2 * pv[s:e], 1e-300) - 1.0, 0.0)
              for t, s, e in zip(tau2, starts, starts[1:])]
     # EM approaches a zero component only slowly: call it 0 once no group's data carry a
@@ -156,12 +158,16 @@ def variance_components(z, var, X, blocks) -> Components:
     return Components(tuple(blocks), tau2, kappa, sigma2 if var is None else None, iteration, exact)
 
 
-def _solve(A, B, D, rhs, ginv, exact):
+def _solve(A, B, D, rhs, ginv, exact, eliminated: slice):
     """Solution of the mixed-model equations and the diagonal of their inverse's effect block.
 
     Equations ``[[A, B], [B', D + diag(ginv)]]`` (weights relative to the
-    residual variance). ``exact``: dense Cholesky; otherwise a sparse LU for the
-    solution and the diagonal blocks' inverse for the variances.
+    residual variance). ``exact``: dense Cholesky; otherwise the solution by
+    eliminating the effects ``eliminated`` (one block: each row is in one of
+    its groups, so its equations are diagonal) and a dense Cholesky of what
+    remains when that is small (crossed designs: the other factors), else a
+    sparse LU in a fill-reducing symmetric order; and the diagonal blocks'
+    inverse for the variances.
     """
     p = A.shape[0]
     if exact:
@@ -169,9 +175,24 @@ def _solve(A, B, D, rhs, ginv, exact):
         factor = linalg.cho_factor(C, lower=True)
         inv = linalg.cho_solve(factor, np.eye(len(C)))
         return inv @ rhs, np.diag(inv)[p:]
-    Dg = D + sparse.diags(ginv)
+    Dg = (D + sparse.diags(ginv)).tocsc()
+    q = Dg.shape[0]
+    keep = np.r_[0:eliminated.start, eliminated.stop:q]
+    if p + len(keep) <= DENSE_MAX:
+        d = Dg.diagonal()[eliminated]
+        rest_k = sparse.vstack([sparse.csr_matrix(B[:, eliminated]), Dg[keep][:, eliminated]]).tocsr()
+        scaled = rest_k @ sparse.diags(1.0 / d)
+        schur = (np.block([[A, B[:, keep]], [B[:, keep].T, Dg[keep][:, keep].toarray()]])
+                 - (scaled @ rest_k.T).toarray())
+        x_rest = linalg.cho_solve(linalg.cho_factor(schur, lower=True),
+                                  np.concatenate([rhs[:p], rhs[p:][keep]]) - scaled @ rhs[p:][eliminated])
+        effects = np.empty(q)
+        effects[keep] = x_rest[p:]
+        effects[eliminated] = (rhs[p:][eliminated] - rest_k.T @ x_rest) / d
+        return np.concatenate([x_rest[:p], effects]), 1.0 / Dg.diagonal()
     C = sparse.bmat([[sparse.csc_matrix(A), sparse.csc_matrix(B)], [sparse.csc_matrix(B.T), Dg]], format="csc")
-    return splu(C).solve(rhs), 1.0 / Dg.diagonal()
+    lu = splu(C, permc_spec="MMD_AT_PLUS_A", diag_pivot_thresh=0.0, options={"SymmetricMode": True})
+    return lu.solve(rhs), 1.0 / Dg.diagonal()
 
 
 #: Central interval of the approximate posterior of ``tau^2`` the rule looks across.

@@ -3,8 +3,8 @@
 Expected log predictive density by Pareto-smoothed importance sampling
 leave-one-out (Vehtari, Gelman and Gabry 2017, "Practical Bayesian model
 evaluation using leave-one-out cross-validation and WAIC", Statistics and
-Computing 27, 1413-1432), computed by ``arviz.loo`` and ranked by
-``arviz.compare``. A Pareto k above 0.7 marks a row whose LOO estimate is
+Computing 27, 1413-1432), computed as ``arviz.loo`` does but for every row at
+once (:mod:`hierwork.results.psis`) and ranked by ``arviz.compare``. A Pareto k above 0.7 marks a row whose LOO estimate is
 unreliable (same paper, §2.1); ArviZ's sample-size-dependent threshold
 ``min(1 - 1/log10(S), 0.7)`` is stored beside it.
 
@@ -44,7 +44,7 @@ from hierwork.inference.convergence import ess_mean
 from hierwork.plan.design import Design, Term
 from hierwork.plan.plan import ModelPlan
 from hierwork.results.draws import distinct_rows, draws_of, pointwise_log_likelihood, rows_of
-from hierwork.results import predictive
+from hierwork.results import predictive, psis
 
 #: Pareto k above which a row's PSIS-LOO estimate is unreliable (Vehtari, Gelman and Gabry 2017).
 PARETO_K_BAD = 0.7
@@ -138,8 +138,7 @@ def row_loo(idata, plan: ModelPlan):
     (:func:`~hierwork.results.draws.distinct_rows`) have identical pointwise
     log-likelihood draws, and PSIS works on each row's draws alone, so their
     Pareto k and ``loo_i`` are identical: both are computed once per distinct
-    row (``arviz.loo``) and gathered; ``elpd_loo``, its SE (``sqrt(n var(loo_i))``)
-    and ``p_loo`` (``lppd - elpd_loo``) are ArviZ's sums over the rows.
+    row (:func:`~hierwork.results.psis.loo_pointwise`) and gathered.
 
     Returns
     -------
@@ -152,24 +151,31 @@ def row_loo(idata, plan: ModelPlan):
     if draws.n * U > LOO_CELLS:
         return None
     reff = relative_efficiency(idata.posterior)
-    loo_u, lppd_u, k_u, result = np.empty(U), np.empty(U), np.empty(U), None
+    loo_u, lppd_u, k_u = np.empty(U), np.empty(U), np.empty(U)
     step = max(1, predictive.MAX_CELLS // draws.n)
     for start in range(0, U, step):
         sl = slice(start, min(start + step, U))
-        part = distinct.rows.subset(sl)
-        ll = pointwise_log_likelihood(draws, part, plan.family)
-        result = _loo(az.InferenceData(log_likelihood=xr.Dataset(
-            {"y": (("chain", "draw", "row"), ll.reshape(draws.shape + (part.n,)))})), reff=reff)
-        loo_u[sl], k_u[sl] = result.loo_i.values, result.pareto_k.values
+        ll = pointwise_log_likelihood(draws, distinct.rows.subset(sl), plan.family)
+        loo_u[sl], k_u[sl] = psis.loo_pointwise(ll, reff)
         lppd_u[sl] = special.logsumexp(ll, axis=0) - np.log(draws.n)
-    n, w = plan.n, distinct.counts
-    elpd = float(w @ loo_u)
-    se = float(np.sqrt(n * np.average((loo_u - elpd / n) ** 2, weights=w)))  # sqrt(n var(loo_i))
+    return _elpd(loo_u, lppd_u, k_u, draws.n, distinct.counts, distinct.inverse)
+
+
+def _elpd(loo_u, lppd_u, k_u, n_samples: int, counts, inverse):
+    """ArviZ's ``ELPDData`` of distinct observations standing for ``counts`` each (``inverse``: one per row).
+
+    ``elpd_loo`` and ``p_loo`` (``lppd - elpd_loo``) are sums over the rows, the
+    SE is ``sqrt(n var(loo_i))``, and ``good_k`` is ArviZ's ``min(1 - 1/log10(S), 0.7)``.
+    """
+    n = int(np.sum(counts))
+    elpd = float(counts @ loo_u)
+    se = float(np.sqrt(n * np.average((loo_u - elpd / n) ** 2, weights=counts)))
+    good_k = min(1 - 1 / np.log10(n_samples), PARETO_K_BAD)
     rows = {"row": np.arange(n)}
-    pointwise = [xr.DataArray(loo_u[distinct.inverse], dims="row", coords=rows, name="loo_i"),
-                 xr.DataArray(k_u[distinct.inverse], dims="row", coords=rows)]
-    return az.ELPDData(data=[elpd, se, float(w @ lppd_u) - elpd, draws.n, n, bool((k_u > result.good_k).any()),
-                             *pointwise, result.scale, result.good_k],
+    pointwise = [xr.DataArray(loo_u[inverse], dims="row", coords=rows, name="loo_i"),
+                 xr.DataArray(k_u[inverse], dims="row", coords=rows)]
+    return az.ELPDData(data=[elpd, se, float(counts @ lppd_u) - elpd, n_samples, n, bool((k_u > good_k).any()),
+                             *pointwise, "log", good_k],
                        index=["elpd_loo", "se", "p_loo", "n_samples", "n_data_points", "warning", "loo_i",
                               "pareto_k", "scale", "good_k"])
 
@@ -194,11 +200,13 @@ def _loo_record(result, plan: ModelPlan | None = None) -> dict:
     return record
 
 
-def _loo(idata, var_name: str = "y", reff: float | None = None):
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore")  # Pareto k warnings are counted in loo.json instead
-        return az.loo(idata, pointwise=True, var_name=var_name,
-                      reff=relative_efficiency(idata.posterior) if reff is None else reff)
+def _loo(idata, var_name: str):
+    """PSIS-LOO of the units of ``idata.log_likelihood[var_name]`` (chain, draw, unit), as ArviZ's ``loo``."""
+    values = idata.log_likelihood[var_name].transpose("chain", "draw", ...).values
+    ll = values.reshape(values.shape[0] * values.shape[1], -1)
+    loo_i, k = psis.loo_pointwise(ll, relative_efficiency(idata.posterior))
+    lppd = special.logsumexp(ll, axis=0) - np.log(len(ll))
+    return _elpd(loo_i, lppd, k, len(ll), np.ones(len(loo_i)), np.arange(len(loo_i)))
 
 
 def relative_efficiency(posterior) -> float:
