@@ -313,7 +313,8 @@ def test_thousands_of_groups_draw_a_capped_scatter():
     rows = pd.DataFrame({"factor": "depot", "group": [f"d{i}" for i in range(5000)],
                          "term": "intercept", "rows": n, "no_pooling_outcome": own,
                          "complete_pooling_outcome": 0.1, "outcome_mean": (own * n + 0.5) / (n + 5),
-                         "outcome_lower": own / 2, "outcome_upper": own * 1.5})
+                         "outcome_lower": own / 2, "outcome_upper": own * 1.5,
+                         "p_above_population": rng.uniform(0, 1, 5000)})
     scale = Scale("probability", "probability of late")
     plot = estimate_figures.pooling_plot(rows, "depot", "intercept", scale, 0.94)
     assert "Drawn: 3000 of 5000 groups" in plot.caption
