@@ -98,8 +98,8 @@ def add_group_effects(idata, plan: ModelPlan, seed, problem: SemiCollapsedProble
     """Draw the integrated factor's ``F__effect`` exactly, then refresh every factor's effects, in place.
 
     First the integrated factor is drawn from its conditional normal given
-    each posterior draw of the rest. With crossed factors the effects NUTS
-    sampled are then refreshed by :data:`REFRESH_SWEEPS` Gibbs sweeps: each
+    each posterior draw of the rest. The effects NUTS sampled (every other
+    factor's) are then refreshed by :data:`REFRESH_SWEEPS` Gibbs sweeps: each
     factor in turn is drawn from its exact conditional normal given the
     coefficients, the SDs and the other factors' current effects (on a normal
     outcome, the rows of different groups of one factor are independent given
