@@ -4,8 +4,9 @@ Expected log predictive density by Pareto-smoothed importance sampling
 leave-one-out (Vehtari, Gelman and Gabry 2017, "Practical Bayesian model
 evaluation using leave-one-out cross-validation and WAIC", Statistics and
 Computing 27, 1413-1432), computed as ``arviz.loo`` does but for every row at
-once (:mod:`hierwork.results.psis`) and ranked by ``arviz.compare``. A Pareto k above 0.7 marks a row whose LOO estimate is
-unreliable (same paper, §2.1); ArviZ's sample-size-dependent threshold
+once (:mod:`hierwork.results.psis`) and ranked by ``arviz.compare``. A Pareto
+k above 0.7 marks a row whose LOO estimate is unreliable (same paper, §2.1);
+ArviZ's sample-size-dependent threshold
 ``min(1 - 1/log10(S), 0.7)`` is stored beside it.
 
 The three models share family, population terms and default priors:

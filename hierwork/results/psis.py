@@ -13,6 +13,9 @@ itself.
 """
 from __future__ import annotations
 
+from hierwork import runtime  # noqa: F401  (before ArviZ)
+
+import arviz as az
 import numpy as np
 
 __all__ = ["psis_log_weights", "loo_pointwise"]
@@ -63,7 +66,6 @@ def loo_pointwise(log_lik: np.ndarray, reff: float) -> tuple[np.ndarray, np.ndar
 
 def _smoothed_rows(x: np.ndarray, reff: float) -> tuple[np.ndarray, np.ndarray]:
     """:func:`psis_log_weights` on log ratios ``x`` (N, S), one observation per row (overwritten)."""
-    raw = x.copy()
     n_obs, n_samples = x.shape
     tail = int(np.ceil(min(n_samples / 5.0, 3 * (n_samples / reff) ** 0.5)))
     x -= x.max(axis=1, keepdims=True)
@@ -94,10 +96,8 @@ def _smoothed_rows(x: np.ndarray, reff: float) -> tuple[np.ndarray, np.ndarray]:
         x[keep] = np.minimum(part, 0.0)  # no smoothed weight above the largest raw one
     x -= _logsumexp_rows(x)[:, None]
     irregular = np.flatnonzero(~regular)
-    if irregular.size:
-        import arviz as az
-
-        x[irregular], k[irregular] = az.psislw(raw[irregular], reff=reff)
+    if irregular.size:  # still the raw ratios up to a constant per row, which PSIS does not see
+        x[irregular], k[irregular] = az.psislw(x[irregular], reff=reff)
     return x, k
 
 
