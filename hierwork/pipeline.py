@@ -91,7 +91,8 @@ def path_model(plan, path: str):
     """The PyMC model NUTS samples on a path, and the step that completes its posterior.
 
     Returns ``(model, complete)``; ``complete(idata, seed)`` draws the effects a
-    path integrates out (collapsed, semi-collapsed) and returns the idata.
+    path integrates out (collapsed, semi-collapsed) or refreshes the sampled
+    ones (:mod:`hierwork.model.refresh`) and returns the idata.
     """
     if path == "collapsed":
         from hierwork.model.collapsed import add_group_effects, build_collapsed_model, collapsed_problem
@@ -106,7 +107,12 @@ def path_model(plan, path: str):
                 lambda idata, seed: add_group_effects(idata, plan, seed, problem))
     from hierwork.model.rowwise import build_model
 
-    return build_model(plan, reduced=path == "reduced"), lambda idata, seed: idata
+    model = build_model(plan, reduced=path == "reduced")
+    if plan.family.exact_normal:
+        return model, lambda idata, seed: idata
+    from hierwork.model.refresh import refresh_effects
+
+    return model, lambda idata, seed: refresh_effects(idata, plan, seed)
 
 
 def sample_posterior(report: CheckReport, progress: bool | None = None):

@@ -13,6 +13,7 @@ import numpy as np
 #: are reproduced from these.
 STREAMS = {
     "group_effects": 5,          # exact draws of integrated-out group effects (collapsed path)
+    "effect_refresh": 6,         # Metropolis-Hastings refresh of sampled group effects (non-normal outcomes)
     "pooling_baselines": 7,      # seeds of the complete- and no-pooling fits compared by LOO
     "posterior_predictive": 101,
     "prior_predictive": 102,

@@ -32,6 +32,7 @@ from hierwork.model import marginal
 from hierwork.model.blocks import coords_of, factor_scales, group_predictor_term
 from hierwork.model.cells import CellStats
 from hierwork.model.paths import integrated_factor, sampled_plan, shifted_columns
+from hierwork.model.refresh import REFRESH_SWEEPS, set_aside_sampled_forms
 from hierwork.model.rowwise import build_model, cell_terms
 from hierwork.plan.plan import FactorPlan, ModelPlan
 
@@ -84,16 +85,6 @@ def build_semi_collapsed_model(plan: ModelPlan, problem: SemiCollapsedProblem | 
                        likelihood_of=likelihood_of)
 
 
-#: Gibbs sweeps over every factor after sampling (:func:`add_group_effects`).
-REFRESH_SWEEPS = 2
-#: Posterior variables of a sampled factor's parameterisation (``F__contrast``...), set aside by the refresh.
-SAMPLED_FORMS = ("contrast", "mean_z", "z", "u", "coef", "partial")
-#: Population coefficients sampled shifted by the mean group effects, set aside by the refresh.
-SHIFTED = ("b_shifted_intercept", "b_shifted_slope")
-#: The InferenceData group that keeps what the refresh sets aside (NUTS's own draws of it).
-AS_SAMPLED = "sampled_forms"
-
-
 def add_group_effects(idata, plan: ModelPlan, seed, problem: SemiCollapsedProblem | None = None):
     """Draw the integrated factor's ``F__effect`` exactly, then refresh every factor's effects, in place.
 
@@ -136,13 +127,7 @@ def add_group_effects(idata, plan: ModelPlan, seed, problem: SemiCollapsedProble
     for _ in range(REFRESH_SWEEPS):
         for step in others + [problem]:
             _draw_factor(idata.posterior, plan, step, rng)
-    post = idata.posterior
-    aside = [name for name in post.data_vars
-             if name.startswith(SHIFTED) or any(name == f"{g.name}__{form}" for g in problem.rest.factors
-                                                for form in SAMPLED_FORMS)]
-    if aside:
-        idata.add_groups({AS_SAMPLED: post[aside]})
-        idata.posterior = post.drop_vars(aside)
+    set_aside_sampled_forms(idata, problem.rest.factors)
     return idata
 
 
