@@ -223,6 +223,9 @@ def test_binomial_report_leads_with_the_outcome_scale(lines):
     away = ((lines_["p_above_population"] > 1 - (1 - level) / 2) | (lines_["p_above_population"] < (1 - level) / 2))
     if away.any():
         assert f"{int(away.sum())} of 30 groups differ from the population value" in standout
+        below = lines_[lines_["p_above_population"] < (1 - level) / 2].sort_values("outcome_mean")
+        if len(below):  # named from the farthest: the lowest first
+            assert f"below it: {below['group'].iloc[0]} (" in standout
     else:
         assert "no group differs clearly from the population value" in standout
     # The link scale is one click away.

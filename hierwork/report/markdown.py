@@ -16,7 +16,7 @@ from hierwork.formatting import number as fmt
 from hierwork.plan.describe import missing_text
 from hierwork.report import fitcheck
 from hierwork.report.page import CAUTION
-from hierwork.report.standout import comparison_sentence, factor_sentences, standing_out
+from hierwork.report.standout import comparison_sentence, factor_sentences, groups_to_show
 from hierwork.report.verdict import verdict
 from hierwork.report.view import View
 from hierwork.runfolder import Run
@@ -63,14 +63,16 @@ def _standout(view: View) -> list[str]:
                             f"{view.scale.text(population['upper'])})."), ""]
     for factor, term in view.keys():
         lines += [f"- {md_escape(line)}" for line in factor_sentences(view, factor, term)]
-        rows = pd.concat(standing_out(view, factor, term)).drop_duplicates(["group"])
+        rows, total = groups_to_show(view, factor, term, MAX_GROUP_ROWS)
+        if total > len(rows):
+            lines += ["", f"The {len(rows)} farthest above and below of the {total} groups that stand out; all are in "
+                          "group_estimates.csv."]
         if len(rows):
             columns = {"group": "group", "outcome_mean": "estimate", "outcome_lower": f"{view.level} lower",
                        "outcome_upper": f"{view.level} upper", "p_above_population": "P(above population)",
                        **({"p_beyond_target": "P(beyond target)"} if view.target and term == "intercept" else {}),
                        "rank_median": "rank"}
-            lines += ["", *_table(rows.sort_values("outcome_mean", ascending=False).head(MAX_GROUP_ROWS), columns,
-                                  view.cells(term != "intercept"))]
+            lines += ["", *_table(rows, columns, view.cells(term != "intercept"))]
         lines.append("")
     contrasts = view.run.contrasts
     if contrasts is not None and len(contrasts):

@@ -33,12 +33,30 @@ def comparison_sentence(view: View) -> str:
 
 
 def standing_out(view: View, factor: str, term: str) -> tuple[pd.DataFrame, pd.DataFrame, pd.DataFrame]:
-    """Groups of one factor and term clearly above / below the population value, and beyond the target."""
+    """Groups of one factor and term clearly above / below the population value, and beyond the target.
+
+    Each from the farthest: above highest first, below lowest first.
+    """
     rows = view.rows(factor, term).sort_values("outcome_mean", ascending=False, kind="stable")
     high, low = away_from_population(rows, view.run.interval)
-    above, below = rows[high], rows[low]
+    above, below = rows[high], rows[low].iloc[::-1]
     beyond = rows[rows["p_beyond_target"] > TARGET_PROBABILITY] if view.target and term == "intercept" else rows.iloc[:0]
     return above, below, beyond
+
+
+def groups_to_show(view: View, factor: str, term: str, limit: int) -> tuple[pd.DataFrame, int]:
+    """The groups that stand out as a table shows them, highest first, and how many stand out.
+
+    Over ``limit``, the farthest on each side: as many below as above, where
+    both sides have that many (then the groups beyond the target, up to ``limit``).
+    """
+    above, below, beyond = standing_out(view, factor, term)
+    total = len(pd.concat([above, below, beyond]).drop_duplicates(["group"]))
+    if total > limit:
+        low = min(len(below), max(limit // 2, limit - len(above)))
+        above, below = above.head(limit - low), below.head(low)
+    rows = pd.concat([above, below, beyond]).drop_duplicates(["group"]).head(limit)
+    return rows.sort_values("outcome_mean", ascending=False, kind="stable"), total
 
 
 def _names(view: View, rows: pd.DataFrame, change: bool) -> str:
@@ -80,20 +98,18 @@ def factor_sentences(view: View, factor: str, term: str) -> list:
 
 
 def _table(view: View, factor: str, term: str) -> Raw:
-    above, below, beyond = standing_out(view, factor, term)
-    rows = pd.concat([above, below, beyond]).drop_duplicates(["group"])
+    rows, total = groups_to_show(view, factor, term, MAX_ROWS)
     if rows.empty:
         return Raw("")
-    rows = rows.sort_values("outcome_mean", ascending=False, kind="stable")
     labels = {"group": "group", "rows": "rows", "trials": "trials", "exposure": "exposure",
               "outcome_mean": "estimate", "outcome_lower": f"{view.level} lower", "outcome_upper": f"{view.level} upper",
               "p_above_population": "P(above population)", "rank_median": "rank",
               "rank_lower": "rank from", "rank_upper": "rank to"}
     if view.target and term == "intercept":
         labels["p_beyond_target"] = "P(beyond target)"
-    note = (el("p", f"The first {MAX_ROWS} of {len(rows)} groups that stand out; all are in group_estimates.csv.",
-               class_="note") if len(rows) > MAX_ROWS else Raw(""))
-    return el("div", note, data_table(rows.head(MAX_ROWS), labels, f"Groups that stand out: {factor}, {term}",
+    note = (el("p", f"The {len(rows)} farthest above and below of the {total} groups that stand out; all are in "
+                    "group_estimates.csv.", class_="note") if total > len(rows) else Raw(""))
+    return el("div", note, data_table(rows, labels, f"Groups that stand out: {factor}, {term}",
                                       sortable=True, shown=view.cells(term != "intercept")))
 
 
