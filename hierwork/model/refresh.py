@@ -17,7 +17,7 @@ Metropolis-Hastings step). Each step leaves the joint posterior unchanged, so
 every stored draw is still an exact posterior draw; where the approximation
 is good (a group of many rows, or few rows and a tight prior) nearly every
 proposal is accepted and the refreshed effects mix as the coefficients and
-SDs do. A rejected proposal keeps NUTS's value: the refresh can only help.
+SDs do. A rejected proposal keeps NUTS's value.
 
 The variables of the factors' sampled parameterisation (``F__coef``,
 ``F__z``, ``b_shifted_*``...) no longer match the refreshed effects: they move
