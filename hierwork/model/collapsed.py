@@ -115,7 +115,7 @@ def add_group_effects(idata, plan: ModelPlan, seed, problem: CollapsedProblem | 
 
     coef = np.concatenate([flat("b")] + [flat(f"{f.name}__gamma") for f in problem.gamma_factors],
                           axis=1)
-    chols = [_chol_draws(flat, f) for f in problem.chain]
+    chols = [chol_draws(flat, f) for f in problem.chain]
     sigma = None if plan.known_sd is not None else flat("residual_sd")
     effects, group_ll = marginal.draw_effects(problem.stats, list(problem.levels), coef, chols,
                                                sigma, rng=seeds.rng(seed, "group_effects"))
@@ -138,8 +138,11 @@ def add_group_effects(idata, plan: ModelPlan, seed, problem: CollapsedProblem | 
     return idata
 
 
-def _chol_draws(flat, f: FactorPlan) -> np.ndarray:
-    """(D, q, q) Cholesky factors ``diag(sd) chol(corr)`` from the stored SDs and correlations."""
+def chol_draws(flat, f: FactorPlan) -> np.ndarray:
+    """(D, q, q) Cholesky factors ``diag(sd) chol(corr)`` from the stored SDs and correlations.
+
+    ``flat(name)`` gives a posterior variable's draws flattened over chains.
+    """
     sd = flat(f"{f.name}__sd")
     if len(f.varying) == 1:
         return sd[:, :, None]

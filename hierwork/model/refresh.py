@@ -136,12 +136,11 @@ def refresh_effects(idata, plan: ModelPlan, seed):
 
 
 def _prior_precision(post, f) -> np.ndarray:
-    """``S^-1`` (D, q, q) of a factor's effects for every draw, ``S = diag(sd) R diag(sd)``."""
-    sd = post[f"{f.name}__sd"].values.reshape(-1, len(f.varying))
-    if len(f.varying) == 1:
-        return (1.0 / sd ** 2)[:, :, None]
-    corr = post[f"{f.name}__corr"].values.reshape(-1, len(f.varying), len(f.varying))
-    return np.linalg.inv(sd[:, :, None] * corr * sd[:, None, :])
+    """``S^-1`` (D, q, q) of a factor's effects for every draw, ``S = L L'`` (:func:`chol_draws`)."""
+    from hierwork.model.collapsed import chol_draws
+
+    chol = chol_draws(lambda name: post[name].values.reshape((-1,) + post[name].shape[2:]), f)
+    return np.linalg.inv(chol @ np.swapaxes(chol, -1, -2))
 
 
 class _Terms:

@@ -31,6 +31,7 @@ from hierwork.inference import seeds
 from hierwork.model import marginal
 from hierwork.model.blocks import coords_of, factor_scales, group_predictor_term
 from hierwork.model.cells import CellStats
+from hierwork.model.collapsed import chol_draws
 from hierwork.model.paths import integrated_factor, sampled_plan, shifted_columns
 from hierwork.model.refresh import REFRESH_SWEEPS, set_aside_sampled_forms
 from hierwork.model.rowwise import build_model, cell_terms
@@ -143,8 +144,7 @@ def _draw_factor(post, plan: ModelPlan, problem: SemiCollapsedProblem, rng) -> N
     stats, groups, effects = _draw_terms(plan, problem, flat)
     if f.predictors:
         effects.append(((flat(f"{f.name}__gamma") @ f.W.T)[:, :, None], (0,), groups[:, -1]))
-    sd = flat(f"{f.name}__sd")
-    chols = sd[:, :, None] if len(f.varying) == 1 else sd[:, :, None] * np.linalg.cholesky(flat(f"{f.name}__corr"))
+    chols = chol_draws(flat, f)
     u = marginal.draw_integrated_effects(stats, flat("b"), effects,
                                       marginal.Integrated(tuple(f.varying_cols), groups[:, -1], f.n_groups),
                                       chols, None if plan.known_sd is not None else flat("residual_sd"), rng=rng)
